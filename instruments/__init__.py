@@ -11,10 +11,16 @@ Modules: ``visa`` (the pyvisa session), ``profile`` (SCPI dialects from
 SCPI server on 127.0.0.1 that serves a Touchstone file or a model).
 """
 
+import logging
+
 from instruments.analyzer import Analyzer, SweepSettings, save_touchstone
 from instruments.profile import Profile, load_profile
 from instruments.simulator import Faults, SeriesRLC, SimulatedAnalyzer
 from instruments.visa import DEFAULT_VISA_LIBRARY
+
+# A library stays quiet unless its user configures logging (retry warnings are reported
+# to the caller through the result and the exceptions).
+logging.getLogger("instruments").addHandler(logging.NullHandler())
 
 __all__ = ["Analyzer", "SweepSettings", "save_touchstone", "Profile", "load_profile", "Faults", "SeriesRLC",
            "SimulatedAnalyzer", "DEFAULT_VISA_LIBRARY"]

@@ -231,15 +231,19 @@ class Analyzer:
             except InstrumentError:
                 self.close()
                 raise
-        instrument = {"identity": self.identity, "resource": self.resource, "profile": self.profile.name,
-                      "profile_sha256": self.profile.sha256, **asdict(settings), "parameter": settings.parameter,
-                      "sweep_time_s": sweep_time_s, "frequencies": self.profile.frequencies, "attempts": attempt}
-        if not settings.binary:
-            del instrument["byte_order"]   # meaningless for text
         provenance = Provenance(dut_id=dut_id, lot=lot, source=self.resource,
                                 source_sha256=_content_sha256(freq_hz, s11), acquired_at=acquired_at,
-                                port=settings.port, instrument=instrument)
+                                port=settings.port, instrument=self._record(settings, sweep_time_s, attempt))
         return Sweep(freq_hz, s11, z0_ohm=self.profile.z0_ohm, provenance=provenance)
+
+    def _record(self, settings: SweepSettings, sweep_time_s: float, attempts: int) -> dict:
+        """``Provenance.instrument``: who measured, through which profile, with what settings."""
+        record = {"identity": self.identity, "resource": self.resource, "profile": self.profile.name,
+                  "profile_sha256": self.profile.sha256, **asdict(settings), "parameter": settings.parameter,
+                  "sweep_time_s": sweep_time_s, "frequencies": self.profile.frequencies, "attempts": attempts}
+        if not settings.binary:
+            del record["byte_order"]   # meaningless for text
+        return record
 
     def _acquire_once(self, settings: SweepSettings) -> tuple[np.ndarray, np.ndarray, float, str]:
         """One pass through the steps; returns (freq_hz, s11, sweep_time_s, acquired_at)."""
@@ -293,7 +297,7 @@ class Analyzer:
                 with self._session.timeout(limit_s):
                     reply = self._session.query(command)
             except LinkError as fault:
-                raise LinkError(f"{fault.message} to {command} (expected sweep time {sweep_time_s:.3g} s)",
+                raise LinkError(f"{fault.message} (query {command}, expected sweep time {sweep_time_s:.3g} s)",
                                 dead=fault.dead) from None
             if reply.lstrip("+") != "1":
                 raise LinkError(f"expected 1 from {command}, got {reply[:40]!r} (replies out of step?)")
@@ -368,14 +372,12 @@ class Analyzer:
 
     def _await_known_answer(self) -> None:
         """Ask for the identity and skip late replies until it comes back."""
-        reply = self._session.query(self.profile.command("identify"))
-        for _ in range(MAX_STALE_REPLIES):
-            if reply == self.identity:
-                return
+        reply, skipped = self._session.query(self.profile.command("identify")), 0
+        while reply != self.identity:
+            if skipped == MAX_STALE_REPLIES:
+                raise LinkError(f"the identity query did not come back after {MAX_STALE_REPLIES} other replies")
             log.info("%s: skipped a late reply %r", self.resource, reply[:40])
-            reply = self._session.read()
-        if reply != self.identity:
-            raise LinkError(f"the identity query did not come back after {MAX_STALE_REPLIES} replies")
+            reply, skipped = self._session.read(), skipped + 1
 
 
 def _parse_error(reply: str) -> tuple[int, str]:

@@ -106,6 +106,8 @@ class Faults:
     error: tuple[int, str] = (-221, "Settings conflict")
 
 
+_COUNTED_FAULTS = ("silent_sweeps", "late_sweeps", "dropped_blocks", "malformed_blocks", "swapped_blocks")
+
 #: Header patterns of the dialect and the name of the setting or action each addresses.
 _TREE = (
     ("[SENSe#]:FREQuency:STARt", "start"),
@@ -222,9 +224,7 @@ class _Instrument:
         self.stopping = threading.Event()
         self.received: deque[str] = deque(maxlen=1000)
         self._lock = threading.RLock()
-        self._remaining = {"silent_sweeps": faults.silent_sweeps, "late_sweeps": faults.late_sweeps,
-                           "dropped_blocks": faults.dropped_blocks, "malformed_blocks": faults.malformed_blocks,
-                           "swapped_blocks": faults.swapped_blocks}
+        self._remaining = {name: getattr(faults, name) for name in _COUNTED_FAULTS}   # left to inject
         self._errors: deque[tuple[int, str]] = deque()
         self._esr = 0
         self._sweep: _SweepRecord | None = None

@@ -7,6 +7,7 @@ resolves to ``configs/fixtures/lead-40mm.toml``; a path is used as given.
 
 from __future__ import annotations
 
+import re
 import sys
 from pathlib import Path
 
@@ -32,8 +33,10 @@ def load_toml(path: str | Path) -> dict:
     try:
         return tomllib.loads(text)
     except tomllib.TOMLDecodeError as error:
-        line = getattr(error, "lineno", None)
-        msg = getattr(error, "msg", str(error))
+        # Python < 3.14 gives the position only inside the message: "... (at line 3, column 7)".
+        found = re.search(r"\(at line (\d+), column \d+\)$", str(error))
+        line = getattr(error, "lineno", None) or (int(found.group(1)) if found else None)
+        msg = re.sub(r"\s*\(at line \d+, column \d+\)$", "", str(error))
         raise ConfigError(f"TOML syntax error: {msg}", where=str(path), line=line) from None
 
 

@@ -66,6 +66,12 @@ class Element:
         return part_impedance(self.kind, self.value, freq_hz, q=m.q, q_ref_hz=m.q_ref_hz,
                               esr_ohm=m.esr_ohm, srf_hz=m.srf_hz)
 
+    @classmethod
+    def from_dict(cls, d: dict) -> "Element":
+        """The element back from its :meth:`as_dict` form (e.g. as stored)."""
+        model = PartModel(**{k: float(d[k]) for k in ("q", "q_ref_hz", "esr_ohm", "srf_hz") if k in d})
+        return cls(d["position"], d["kind"], float(d["value"]), model)
+
     def as_dict(self) -> dict:
         """JSON shape of ../shared/interfaces.md: position, kind, value, model keys."""
         return {"position": self.position, "kind": self.kind, "value": float(self.value),

@@ -414,18 +414,23 @@ def _check_inside(f: np.ndarray, f_lo: float, f_hi: float) -> None:
 def summarise_lot(headrooms) -> dict:
     """Distribution of Q, the bound and the headroom across a lot's units.
 
+    ``headrooms``: :class:`Headroom` objects or their stored :meth:`Headroom.as_dict` form.
     Returns {"units": n, "q_estimate": stats, "rl_bound_db": stats, "headroom_db": stats,
     "verdicts": {code: count}, "rough_estimates": count}; stats is {"count", "min", "p10",
     "median", "p90", "max"} over the finite values (None when there are none).
     """
-    items = list(headrooms)
+    items = [h.as_dict() if isinstance(h, Headroom) else h for h in headrooms]
+
+    def column(key):
+        return [np.nan if h.get(key) is None else h[key] for h in items]
+
     return {
         "units": len(items),
-        "q_estimate": _stats([h.bound.q for h in items]),
-        "rl_bound_db": _stats([h.bound.rl_bound_db for h in items]),
-        "headroom_db": _stats([h.gap_db for h in items]),
-        "verdicts": dict(Counter(h.verdict_code for h in items)),
-        "rough_estimates": sum(h.estimate_rough for h in items),
+        "q_estimate": _stats(column("q_estimate")),
+        "rl_bound_db": _stats(column("rl_bound_db")),
+        "headroom_db": _stats(column("headroom_db")),
+        "verdicts": dict(Counter(h.get("verdict_code") for h in items)),
+        "rough_estimates": sum(bool(h.get("estimate_rough")) for h in items),
     }
 
 

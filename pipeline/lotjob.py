@@ -15,7 +15,8 @@ import numpy as np
 
 from pipeline import batch
 from pipeline.acquire import sha256_file
-from pipeline.lot import LotData, common_band_grid, shared_network, tolerance_yield
+from pipeline.headroom import summarise_lot
+from pipeline.lot import common_band_grid, shared_network, tolerance_yield, yield_at_spec
 from pipeline.store import ResultsStore
 
 
@@ -59,39 +60,37 @@ def process_lot(store: ResultsStore, paths: list[str], settings, *, workers=None
     return counts
 
 
-def lot_band_data(store: ResultsStore, lot: str, settings) -> LotData:
-    """The lot's de-embedded units (latest record per DUT) on a common in-band grid."""
-    indices = store.find(lot=lot)
-    records = [store.get_unit(i) for i in indices]
-    records = [r for r in records if r.settings_hash == settings.digest()]
-    return common_band_grid([(r.dut_id, r.freq_hz, r.s11_dut) for r in records],
-                            settings.band_hz, z0=settings.z0_ohm)
+def lot_records(store: ResultsStore, lot: str, settings) -> list:
+    """The lot's latest record per DUT that was made with these settings."""
+    digest = settings.digest()
+    return [r for r in (store.get_unit(i) for i in store.find(lot=lot)) if r.settings_hash == digest]
 
 
 def analyse_lot(store: ResultsStore, lot: str, settings, *, mc_trials: int = 2000,
                 seed: int = 0) -> dict:
     """Shared network, its yield and tolerance yield for ``lot``; stored and returned."""
-    frame = store.units_frame(lot=lot)
-    frame = frame[frame["settings_hash"] == settings.digest()]
+    records = lot_records(store, lot, settings)
     failures = store.failures_frame(lot=lot)
     summary = {
         "lot": lot,
         "settings": settings.as_dict(),
-        "n_units": int(len(frame)),
+        "n_units": len(records),
         "n_failed_files": int(len(failures)),
         "failures": [{"source": s, "reason": r} for s, r in zip(failures["source"], failures["reason"])],
     }
-    if len(frame) == 0:
+    if not records:
         return summary
     spec = settings.spec_rl_db
-    before = frame["rl_before_worst_db"].to_numpy()
-    after = frame["rl_after_worst_db"].to_numpy()
+    before = np.array([r.rl_before_worst_db for r in records])
+    after = np.array([r.rl_after_worst_db for r in records])
     summary.update({
         "rl_before_median_db": float(np.median(before)), "rl_before_worst_db": float(np.min(before)),
         "rl_after_median_db": float(np.median(after)), "rl_after_worst_db": float(np.min(after)),
-        "yield_before": float(np.mean(before >= spec)), "yield_after_own": float(np.mean(after >= spec)),
+        "yield_before": yield_at_spec(before, spec), "yield_after_own": yield_at_spec(after, spec),
+        "headroom": summarise_lot(r.headroom for r in records),
     })
-    data = lot_band_data(store, lot, settings)
+    data = common_band_grid([(r.dut_id, r.freq_hz, r.s11_dut) for r in records],
+                            settings.band_hz, z0=settings.z0_ohm)
     shared = shared_network(data, spec, series=settings.series, parts=settings.parts)
     tolerance = tolerance_yield(data, shared.elements, spec, settings.parts, n_trials=mc_trials, seed=seed)
     summary["shared"] = shared.as_dict()

@@ -106,8 +106,7 @@ def match_figure(freq_hz, s11_before, s11_after, band_hz: tuple[float, float], z
                  elements: Sequence[Element], *, title: str = "",
                  rl_bound_db: float | None = None, rl_bound_label: str = "Bode–Fano bound",
                  spec_rl_db: float | None = None,
-                 others: Sequence[tuple[str, np.ndarray]] = (),
-                 size_in: tuple[float, float] = FIG_SIZE_IN):
+                 others: Sequence[tuple[str, np.ndarray]] = ()):
     """The two-panel match figure as a matplotlib ``Figure`` (Agg canvas, nothing shown).
 
     freq_hz     : (N,) Hz, rising.
@@ -115,7 +114,8 @@ def match_figure(freq_hz, s11_before, s11_after, band_hz: tuple[float, float], z
     s11_after   : (N,) complex Gamma at the source port with ``elements`` in place.
     band_hz     : (f_lo, f_hi); f_lo == f_hi for a single-frequency match.
     elements    : the network, source -> load (empty: no network needed).
-    rl_bound_db : optional best return loss achievable over the band (drawn dashed).
+    rl_bound_db : optional best return loss achievable over the band (dashed when it fits
+                  on the chart; its value is listed in the worst-in-band box either way).
     spec_rl_db  : optional pass/fail return loss (drawn dotted).
     others      : further (label, (N,) Gamma) "after" traces, e.g. with a lot's shared
                   network, drawn dashed on both panels.
@@ -130,7 +130,7 @@ def match_figure(freq_hz, s11_before, s11_after, band_hz: tuple[float, float], z
     s11_before = np.asarray(s11_before, dtype=complex)
     s11_after = np.asarray(s11_after, dtype=complex)
     others = [(label, np.asarray(s11, dtype=complex)) for label, s11 in others]
-    fig = Figure(figsize=size_in, dpi=DPI, facecolor="white")
+    fig = Figure(figsize=FIG_SIZE_IN, dpi=DPI, facecolor="white")
     ax_rl = fig.add_axes((0.065, 0.12, 0.46, 0.73))
     ax_smith = fig.add_axes((0.575, 0.19, 0.41, 0.70))
     _draw_return_loss(ax_rl, freq_hz, s11_before, s11_after, band_hz, rl_bound_db,
@@ -166,15 +166,23 @@ def _draw_return_loss(ax, freq_hz, s11_before, s11_after, band_hz, rl_bound_db, 
     ax.plot(f, rl_after, color=AFTER, lw=2.0, label="after (with network)")
     for label, s11 in others:
         ax.plot(f, metrics.return_loss_db(s11), color=OTHER, lw=1.5, ls="--", label=label)
-    if spec_rl_db is not None:
-        ax.axhline(spec_rl_db, color=SPEC, lw=1.0, ls=":", label=f"spec {spec_rl_db:g} dB")
-    highest = max(float(np.max(rl_after)), rl_bound_db if rl_bound_db is not None else 0.0)
+    highest = float(np.max(rl_after))
+    if rl_bound_db is not None and rl_bound_db + 3 <= RL_AXIS_TOP_DB:
+        highest = max(highest, rl_bound_db)           # a bound that fits is always in view
     top = min(RL_AXIS_TOP_DB, max(25.0, 5 * np.ceil((highest + 3) / 5)))
+    # The spec and the bound are labelled on the chart and in the text box, not in the
+    # legend, so the legend stays short enough to sit beside the box.
+    if spec_rl_db is not None:
+        ax.axhline(spec_rl_db, color=SPEC, lw=1.0, ls=":")
+        ax.text(f[-1], spec_rl_db, f"spec {spec_rl_db:g} dB ", color=MUTED, fontsize=8,
+                ha="right", va="bottom")
+    bound_row = None
     if rl_bound_db is not None:
-        off_scale = "  (above the chart)" if rl_bound_db > top else ""
-        ax.axhline(rl_bound_db, color=AFTER, lw=1.0, ls="--", alpha=0.6,
-                   label=f"{rl_bound_label} {rl_bound_db:.1f} dB{off_scale}")
-    _mark_worst_in_band(ax, freq_hz, scale, rl_before, rl_after, band_hz)
+        if rl_bound_db <= top:
+            ax.axhline(rl_bound_db, color=AFTER, lw=1.0, ls="--", alpha=0.6)
+        where = "dashed" if rl_bound_db <= top else "above the chart"
+        bound_row = f"{rl_bound_label}  RL {rl_bound_db:.1f} dB ({where})"
+    _mark_worst_in_band(ax, freq_hz, scale, rl_before, rl_after, band_hz, bound_row)
 
     ax.set_ylim(0, top)
     ax.set_xlim(f[0], f[-1])
@@ -189,8 +197,10 @@ def _draw_return_loss(ax, freq_hz, s11_before, s11_after, band_hz, rl_bound_db, 
     draw_vswr_axis(ax, top)
 
 
-def _mark_worst_in_band(ax, freq_hz, scale, rl_before, rl_after, band_hz) -> None:
-    """Mark the smallest in-band return loss of both traces and list it, with VSWR and |Γ|.
+def _mark_worst_in_band(ax, freq_hz, scale, rl_before, rl_after, band_hz,
+                        bound_row: str | None = None) -> None:
+    """Mark the smallest in-band return loss of both traces and list it, with VSWR and |Γ|
+    (and ``bound_row``, the best achievable, as a last line when given).
 
     For a single-frequency match the values are those at that frequency (interpolated).
     """
@@ -211,6 +221,8 @@ def _mark_worst_in_band(ax, freq_hz, scale, rl_before, rl_after, band_hz) -> Non
         rl_text = f"{rl_mark:5.1f}" if rl_mark < RL_AXIS_TOP_DB else f">{RL_AXIS_TOP_DB:4.0f}"
         rows.append(f"{name}  RL {rl_text} dB   VSWR {float(metrics.vswr(gamma)):5.2f}   "
                     f"|Γ| {gamma:.3f}")
+    if bound_row:
+        rows.append(bound_row)
     ax.text(0.015, 0.975, "\n".join(rows), transform=ax.transAxes, ha="left", va="top",
             fontsize=8.5, color=INK, family="monospace", linespacing=1.5,
             bbox=dict(boxstyle="round,pad=0.45", fc="white", ec="#d5dbe1", alpha=0.92))

@@ -103,4 +103,5 @@ def process_sweep(raw: Sweep, settings: Settings) -> UnitRecord:
         bw_after_hz=metrics.bandwidth_at_spec(dut.freq_hz, s11_matched, settings.spec_rl_db, center),
         delivered_fraction_min=float(best.delivered_fraction_min),
         headroom=headroom.as_dict(),
+        extras={"instrument": prov.instrument} if prov.instrument else {},
     )

@@ -32,8 +32,8 @@ that is complete by these rules but does not parse is rejected. After an inotify
 overflow (events lost) the writer flags are dropped and a rescan runs at once; periodic
 rescans also catch events dropped at ``stop()`` and polling gaps.
 
-Crash safety, for a watcher killed at any moment (SIGKILL, power cut of the PC, not of the
-disk): a good file is committed to the store first and moved second, so a restart finds
+Crash safety, for a watcher killed at any moment (SIGKILL, a crash; a power cut can lose
+what the operating system had not yet written, see :mod:`pipeline.store`): a good file is committed to the store first and moved second, so a restart finds
 it in the folder, sees its hash in the store and moves it as done without a second
 record. A bad file has its failure recorded first, then the sidecar written, then the
 file moved; a restart reads it again (failures are deterministic), sees the failure is
@@ -55,7 +55,7 @@ import threading
 import time
 import traceback
 from collections import deque
-from concurrent.futures import Future, ProcessPoolExecutor
+from concurrent.futures import CancelledError, Future, ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -73,6 +73,8 @@ RETRY_DELAY_S = 1.0         # first retry delay after such a failure; doubles ea
 REASON_SUFFIX = ".reason.txt"
 TEMP_SUFFIXES = (".part", ".partial", ".tmp", ".temp", ".crdownload", ".swp")
 MAX_WAIT_S = 0.2            # longest sleep of the main loop (how soon a stop request is seen), s
+COMMIT_WINDOW_S = 0.05      # records back within this time share one store commit (one flush), s
+COMMIT_BATCH = 32           # ... up to this many
 
 WATCH_KEYS = frozenset({
     "folder", "store", "done_dir", "rejected_dir", "keep_processed", "stable_s", "polling",
@@ -398,8 +400,8 @@ def _process_in_worker(path: str):
     return process_one(path, _WORKER_SETTINGS)
 
 
-def _warm_up() -> int:
-    return os.getpid()
+def _warm_up() -> None:
+    """A no-op task: submitting one per worker starts them all before the first file."""
 
 
 def process_one(path: str, settings) -> tuple[str, object]:
@@ -418,11 +420,16 @@ def process_one(path: str, settings) -> tuple[str, object]:
 
 
 class _Workers:
-    """A process pool (spawned, so the watchdog threads are not forked), or inline work."""
+    """A process pool (spawned, so the watchdog threads are not forked), or inline work.
+
+    ``generation`` counts pool restarts, so that the many futures a broken pool fails
+    cause one restart, not one each.
+    """
 
     def __init__(self, count: int, settings):
         self.count = count
         self.settings = settings
+        self.generation = 0
         self._pool: ProcessPoolExecutor | None = None
         if count:
             self._start()
@@ -441,10 +448,12 @@ class _Workers:
             return future
         return self._pool.submit(_process_in_worker, path)
 
-    def restart(self) -> None:
-        """Replace a broken pool (a worker died: out of memory, a crash in a library)."""
-        if self._pool is not None:
+    def restart(self, generation: int) -> None:
+        """Replace the pool of ``generation`` if it is still the current one (it broke: a
+        worker died of memory exhaustion or a crash in a library)."""
+        if self._pool is not None and generation == self.generation:
             self._pool.shutdown(wait=False, cancel_futures=True)
+            self.generation += 1
             self._start()
 
     def close(self) -> None:
@@ -545,6 +554,7 @@ class _Job:
     ready: Ready
     sha256: str
     future: Future = field(repr=False)
+    generation: int = 0           # of the worker pool that runs it
 
 
 class FolderWatcher:
@@ -571,6 +581,8 @@ class FolderWatcher:
         self._ready: deque[Ready] = deque()              # complete, waiting for a worker
         self._queued: set[str] = set()                   # the paths in self._ready
         self._jobs: dict[str, _Job] = {}
+        self._finished: list[tuple[Ready, object]] = []  # records back from the workers, to commit
+        self._first_finished_at = 0.0                     # when the oldest of them came back
         self._settled: dict[str, tuple[int, int]] = {}    # left in place: path -> (size, mtime_ns)
         self._stop_requested = False
         self._stop_announced = False
@@ -641,8 +653,8 @@ class FolderWatcher:
                 self._stop_announced = True
                 log.info("stop requested: finishing the %d file(s) in hand", len(self._jobs))
             self._publish()
-            idle = not (self._jobs or self._ready or len(tracker))
-            if (self._stop_requested and not self._jobs) or (once and idle):
+            busy = self._jobs or self._finished
+            if (self._stop_requested and not busy) or (once and not (busy or self._ready or len(tracker))):
                 break
 
     def _sleep_time(self, next_rescan: float) -> float:
@@ -650,6 +662,8 @@ class FolderWatcher:
             return 0.0
         now = time.monotonic()
         wake = min(next_rescan, self._tracker.next_due() or next_rescan)
+        if self._finished:
+            wake = min(wake, self._first_finished_at + COMMIT_WINDOW_S)
         return max(0.0, min(MAX_WAIT_S, wake - now))
 
     def _max_jobs(self) -> int:
@@ -660,8 +674,10 @@ class FolderWatcher:
         try:
             message = self._inbox.get(timeout=timeout) if timeout > 0 else self._inbox.get_nowait()
         except queue.Empty:
-            return
+            message = None
         for _ in range(10000):          # bounded, so a flood of events cannot starve the rest
+            if message is None:
+                break
             if message[0] == "fs":
                 self._on_fs_event(*message[1:])
             else:
@@ -669,7 +685,16 @@ class FolderWatcher:
             try:
                 message = self._inbox.get_nowait()
             except queue.Empty:
-                return
+                break
+        if self._commit_due():
+            self._commit_finished()
+
+    def _commit_due(self) -> bool:
+        """Commit now, or wait a moment for more records to share the commit?"""
+        if not self._finished:
+            return False
+        return (not self._jobs or self._stop_requested or len(self._finished) >= COMMIT_BATCH
+                or time.monotonic() - self._first_finished_at >= COMMIT_WINDOW_S)
 
     # -- events and scans --
 
@@ -697,8 +722,8 @@ class FolderWatcher:
         elif kind in ("created", "modified", "closed"):
             if src in self._settled and kind != "modified" and self._unchanged(src):
                 return                   # our own look at a file left in place
-            if kind != "created" and src not in tracker and not os.path.exists(src):
-                return                   # e.g. the close of a file removed while open
+            if src not in tracker and not os.path.exists(src):
+                return                   # a late event for a file already handled, or gone
             self._settled.pop(src, None)
             getattr(tracker, kind)(src, now)
         elif kind == "opened":
@@ -767,7 +792,7 @@ class FolderWatcher:
                 self._file_done(ready, None, already=True)
                 continue
             future = self._workers.submit(ready.path)
-            self._jobs[ready.path] = _Job(ready, sha, future)
+            self._jobs[ready.path] = _Job(ready, sha, future, self._workers.generation)
             future.add_done_callback(lambda _f, p=ready.path: self._inbox.put(("job", p)))
 
     def _finish(self, path: str) -> None:
@@ -776,7 +801,7 @@ class FolderWatcher:
             return
         try:
             kind, value = job.future.result()
-        except BrokenProcessPool:
+        except (BrokenProcessPool, CancelledError):
             self._worker_died(job)
             return
         if not os.path.exists(path):
@@ -787,7 +812,9 @@ class FolderWatcher:
             self._tracker.add(path, time.monotonic())
             return
         if kind == "record":
-            self._file_done(job.ready, value, already=self.store.contains(value.source_sha256, self._digest))
+            if not self._finished:
+                self._first_finished_at = time.monotonic()
+            self._finished.append((job.ready, value))
         elif kind == "bad":
             self._reject(job.ready, job.sha256, value)
         elif kind == "oserror":
@@ -808,9 +835,11 @@ class FolderWatcher:
         return (st.st_size, st.st_mtime_ns) != (ready.size, ready.mtime_ns)
 
     def _worker_died(self, job: _Job) -> None:
-        if not self._stop_requested:
-            log.error("a worker process died while reading %s; restarting the workers", self._rel(job.ready.path))
-            self._workers.restart()
+        """The pool broke with this file in hand: restart it once, read the file again."""
+        if job.generation == self._workers.generation and not self._stop_requested:
+            log.error("a worker process died while reading %s; restarting the workers",
+                      self._rel(job.ready.path))
+            self._workers.restart(job.generation)
         attempts = job.ready.attempts + 1
         if attempts >= MAX_READ_ATTEMPTS:
             self._reject(job.ready, job.sha256, "a worker process died each time this file was read")
@@ -828,13 +857,28 @@ class FolderWatcher:
 
     # -- outcomes: store first, move second --
 
+    def _commit_finished(self) -> None:
+        """Store the records that came back (one commit for all), then move their files."""
+        finished, self._finished = self._finished, []
+        new, outcomes = {}, []
+        for ready, record in finished:
+            key = record.source_sha256
+            already = key in new or self.store.contains(key, self._digest)
+            if not already:
+                new[key] = record
+            outcomes.append((ready, record, already))
+        if new:
+            self.store.append_many(list(new.values()))     # committed when it returns
+        for ready, record, already in outcomes:
+            self._file_done(ready, record, already=already)
+
     def _file_done(self, ready: Ready, record, *, already: bool) -> None:
+        """Count, log and move (or leave) a file whose record is in the store."""
         name = self._rel(ready.path)
         if already:
             self.status.already_stored += 1
             result = "already stored with these settings"
         else:
-            self.store.append(record)          # committed when it returns
             self.status.stored += 1
             result = describe_record(record)
         self.status.last = f"{name}: {result}"
@@ -890,7 +934,7 @@ class FolderWatcher:
 
     def _publish(self) -> None:
         self.status.waiting = len(self._ready) + (len(self._tracker) if self._tracker else 0)
-        self.status.in_hand = len(self._jobs)
+        self.status.in_hand = len(self._jobs) + len(self._finished)
         self._on_status(self.status)
 
     def _log_start(self, observer) -> None:

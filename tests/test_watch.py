@@ -486,15 +486,16 @@ def test_live_watch_takes_files_however_they_arrive(tmp_path):
         (inbox / "new-lot").mkdir()
         (inbox / "new-lot" / "sub.s1p").write_bytes(sweeps[4])             # a new sub-folder
         (inbox / "bad.s1p").write_bytes(malformed(sweeps[5], "truncated"))
-        gone = inbox / "gone.s1p"
-        with open(gone, "wb") as fh:                                       # removed before complete
-            fh.write(sweeps[5][:100])
-            fh.flush()
-            gone.unlink()
         slow.join()
         expected = ["done/atomic.s1p", "done/moved-in.s1p", "done/new-lot/sub.s1p", "done/plain.s1p",
                     "done/slow.s1p", "rejected/bad.s1p", "rejected/bad.s1p.reason.txt"]
         assert wait_until(lambda: files_under(inbox) == expected, 20), files_under(inbox)
+        gone = inbox / "gone.s1p"
+        with open(gone, "wb") as fh:                                       # removed while waiting
+            fh.write(sweeps[5][:100])
+            fh.flush()
+            assert wait_until(lambda: running.watcher.status.waiting == 1, 5)
+            gone.unlink()
         assert wait_until(lambda: running.watcher.status.vanished == 1, 5)
     status = running.status
     assert (status.stored, status.rejected, status.waiting, status.in_hand) == (5, 1, 0, 0)
@@ -532,6 +533,34 @@ def test_a_reader_can_follow_the_store_while_the_watcher_writes(tmp_path):
     assert files_under(inbox) == [f"done/unit{i}.s1p" for i in range(4)]
 
 
+def test_a_reader_holding_the_store_before_the_watcher_starts_only_delays_it(tmp_path):
+    from pipeline.store import ResultsStore
+
+    inbox, store_path = tmp_path / "inbox", tmp_path / "results.h5"
+    inbox.mkdir()
+    (inbox / "unit0.s1p").write_bytes(antenna_sweeps(1, seed=9)[0])
+    ResultsStore(store_path, mode="a").close()
+    reader = ResultsStore(store_path, mode="r")
+    log = tmp_path / "watch.log"
+    code = "import sys; from pipeline.cli import main; sys.exit(main(sys.argv[1:]))"
+    with open(log, "w") as err:
+        proc = subprocess.Popen([sys.executable, "-c", code, "watch", str(inbox), "--store", str(store_path),
+                                 "--band", BAND, "--once", "--workers", "0"], cwd=REPO,
+                                stdout=subprocess.PIPE, stderr=err, text=True)
+    try:
+        assert wait_until(lambda: "opening the store" in log.read_text(), 30)
+        time.sleep(2.0)
+        assert proc.poll() is None and not (inbox / "done").exists()   # waiting for the reader
+        reader.close()
+        out, _ = proc.communicate(timeout=60)
+    finally:
+        reader.close()
+        if proc.poll() is None:
+            proc.kill()
+    assert proc.returncode == 0, log.read_text()
+    assert "done 1 (1 stored" in out and files_under(inbox) == ["done/unit0.s1p"]
+
+
 def test_sigterm_finishes_the_files_in_hand_and_exits_zero(tmp_path):
     inbox, store_path = tmp_path / "inbox", tmp_path / "results.h5"
     inbox.mkdir()
@@ -558,6 +587,43 @@ def test_sigterm_finishes_the_files_in_hand_and_exits_zero(tmp_path):
     from pipeline.store import ResultsStore
 
     ResultsStore(store_path, mode="a", timeout_s=1).close()           # closed: a writer gets in
+
+
+def spawned_workers(pid: int) -> list[int]:
+    """Worker processes of a watcher (children started by multiprocessing's spawn)."""
+    try:
+        children = Path(f"/proc/{pid}/task/{pid}/children").read_text().split()
+        return [int(c) for c in children if b"spawn_main" in Path(f"/proc/{c}/cmdline").read_bytes()]
+    except OSError:
+        return []
+
+
+@pytest.mark.skipif(not Path("/proc/self/task").is_dir(), reason="finds the worker through /proc")
+def test_a_worker_killed_mid_file_is_replaced_and_the_file_read_again(tmp_path):
+    inbox, store_path = tmp_path / "inbox", tmp_path / "results.h5"
+    inbox.mkdir()
+    code = "import sys; from pipeline.cli import main; sys.exit(main(sys.argv[1:]))"
+    proc = subprocess.Popen([sys.executable, "-c", code, "watch", str(inbox), "--store", str(store_path),
+                             "--band", BAND, "--workers", "1"], cwd=REPO, stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True)
+    try:
+        assert wait_until(lambda: spawned_workers(proc.pid), 60)
+        first_worker = spawned_workers(proc.pid)[0]
+        for i, content in enumerate(antenna_sweeps(20, seed=8)):
+            (inbox / f"unit{i:02d}.s1p").write_bytes(content)
+        assert wait_until(lambda: (inbox / "done").is_dir() and any((inbox / "done").iterdir()), 60)
+        os.kill(first_worker, signal.SIGKILL)
+        assert wait_until(lambda: len(list((inbox / "done").iterdir())) == 20, 60)
+        assert spawned_workers(proc.pid) != [first_worker]
+        proc.send_signal(signal.SIGTERM)
+        out, err = proc.communicate(timeout=30)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    assert proc.returncode == 0, err
+    assert "a worker process died" in err
+    units, _ = store_units(store_path)
+    assert len(units) == 20 and units["source_sha256"].is_unique
 
 
 @pytest.mark.parametrize("args, message", [

@@ -26,6 +26,9 @@ from pipeline.cli import match_cmd  # noqa: E402,F401
 from pipeline.cli import results_cmd  # noqa: E402,F401
 from pipeline.cli import fixture_cmd  # noqa: E402,F401
 from pipeline.cli import watch_cmd  # noqa: E402,F401
+from pipeline.cli import lot_cmd  # noqa: E402,F401
+from pipeline.cli import measure_cmd  # noqa: E402,F401
+from pipeline.cli import report_cmd  # noqa: E402,F401
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -40,13 +43,10 @@ def main(argv: list[str] | None = None) -> int:
     except typer.Abort:
         print("matchbay: aborted", file=sys.stderr)
         return 130
-    except Exception as error:  # click usage errors carry their own message and code
-        import click
-
-        if isinstance(error, click.ClickException):
-            print(f"matchbay: {error.format_message()}", file=sys.stderr)
-            return 2
-        raise
+    except typer.TyperException as error:     # usage errors: bad or missing options
+        show = getattr(error, "format_message", None)
+        print(f"matchbay: {show() if show else error}", file=sys.stderr)
+        return 2
     return 0
 
 

@@ -12,13 +12,16 @@ from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, T
 
 from pipeline import batch
 from pipeline.cli import app
-from pipeline.cli.options import build_settings, load_station
+from pipeline.cli.options import (EPS_EFF, FIXTURE, LOSS_REF, PORT_DELAY, PORT_LENGTH, PORT_LOSS,
+                                  PORT_LOSS_DC, VELOCITY_FACTOR, FixtureFlags, build_settings,
+                                  load_station)
 from pipeline.cli.summary import print_lot_summary
 from pipeline.lotjob import analyse_lot, process_lot
 from pipeline.store import ResultsStore
 
 SAMPLE_LOT = Path(__file__).resolve().parents[2] / "sample_measurements" / "lot-915"
 DEMO_BAND = "902M:928M"
+DEMO_PARTS = "generic-0402"     # finite Q, self-resonance and tolerances of a generic 0402 family
 
 
 def _default_lot_id(paths: list[str]) -> str:
@@ -54,8 +57,14 @@ def lot(
     spec_rl: Optional[float] = typer.Option(None, help="Return loss (dB) a unit must reach over the band."),
     series: Optional[str] = typer.Option(None, help="Part series: E6, E12, E24, E48, E96, E192 or ideal."),
     parts: Optional[str] = typer.Option(None, help="Part library name under configs/parts/ or a file."),
-    fixture: Optional[str] = typer.Option(None, help="Fixture chain name under configs/fixtures/ or a file."),
-    port_delay: Optional[str] = typer.Option(None, help="Port extension: one-way delay, e.g. 85p."),
+    fixture: Optional[str] = FIXTURE,
+    port_delay: Optional[str] = PORT_DELAY,
+    port_length: Optional[str] = PORT_LENGTH,
+    velocity_factor: Optional[str] = VELOCITY_FACTOR,
+    eps_eff: Optional[str] = EPS_EFF,
+    port_loss: Optional[str] = PORT_LOSS,
+    port_loss_dc: Optional[str] = PORT_LOSS_DC,
+    loss_ref: Optional[str] = LOSS_REF,
     z0: Optional[float] = typer.Option(None, help="Reference impedance, ohm."),
     port: Optional[int] = typer.Option(None, help="Port whose reflection is matched in N-port files."),
     station: Optional[str] = typer.Option(None, help="Station file under configs/stations/ with defaults."),
@@ -67,7 +76,9 @@ def lot(
 ):
     """Match every unit of a lot, log it in the store, choose one BOM for the line."""
     settings = build_settings(band=band, z0=z0, spec_rl=spec_rl, series=series, parts=parts,
-                              fixture=fixture, port_delay=port_delay, port=port,
+                              fixture=FixtureFlags(fixture, port_delay, port_length, velocity_factor,
+                                                   eps_eff, port_loss, port_loss_dc, loss_ref),
+                              port=port,
                               lot=lot_id or _default_lot_id(paths), station=load_station(station))
     run_lot(paths, settings, store, workers=workers, cluster=cluster, batch_size=batch_size,
             mc_trials=mc_trials, seed=seed, console=Console())
@@ -84,7 +95,7 @@ def demo(
     store_path = out / "demo-lot.h5"
     if store_path.exists():
         store_path.unlink()            # the demo's own output, made fresh each run
-    settings = build_settings(band=DEMO_BAND, lot="lot-915", spec_rl=10.0)
+    settings = build_settings(band=DEMO_BAND, lot="lot-915", spec_rl=10.0, parts=DEMO_PARTS)
     console.print(f"[bold]matchbay demo[/]: {SAMPLE_LOT.relative_to(SAMPLE_LOT.parents[1])} "
-                  f"over {DEMO_BAND}, spec 10 dB, E24 parts -> {store_path}")
+                  f"over {DEMO_BAND}, spec 10 dB, E24 {DEMO_PARTS} parts -> {store_path}")
     run_lot([str(SAMPLE_LOT)], settings, str(store_path), workers=workers, console=console)

@@ -25,9 +25,13 @@ import typer
 from pipeline import metrics
 from pipeline.acquire import IngestWarning, read_sweep
 from pipeline.cli import app
+from pipeline.cli.options import (EPS_EFF, FIXTURE, LOSS_REF, PORT_DELAY, PORT_LENGTH, PORT_LOSS,
+                                  PORT_LOSS_DC, VELOCITY_FACTOR, FixtureFlags)
 from pipeline.config import load_defaults
+from pipeline.deembed import FixtureChain, passivity_warning
 from pipeline.elements import Element
 from pipeline.errors import ConfigError, MatchbayError, MatchError
+from pipeline.headroom import Headroom, analyse_band
 from pipeline.match import Solution, band_points, match_at, match_band, predicted_gamma
 from pipeline.networks import delivered_fraction, element_ladder, reflection
 from pipeline.parts import PartLibrary, check_series, load_parts, nearest_standard
@@ -49,17 +53,21 @@ class MatchRequest:
     parts: PartLibrary
     port: int
     max_bytes: int
+    fixture: FixtureChain
+    spec_rl_db: float
 
 
 @dataclass(frozen=True)
 class MatchResult:
     """The answer for one file."""
 
-    sweep: Sweep                         # the load the network was computed for
+    raw: Sweep                           # as read, at the analyzer's reference plane
+    sweep: Sweep                         # the load the network was computed for (de-embedded)
     request: MatchRequest
     return_loss_before_db: float         # worst in band (at f for --at), unmatched
     solutions: list[Solution]
     previews: list[Solution | None]      # nearest standard-valued pair per exact solution
+    headroom: Headroom | None            # Bode-Fano headroom of the best band match
 
 
 @app.command("match")
@@ -75,20 +83,35 @@ def match(
     as_json: bool = typer.Option(False, "--json", help="Print the result as one JSON object."),
     plot: Optional[str] = typer.Option(None, "--plot", help="Write the return-loss / Smith-chart figure (PNG)."),
     max_mb: Optional[float] = typer.Option(None, "--max-mb", help="Refuse input files larger than this (MB)."),
+    spec_rl: Optional[float] = typer.Option(None, "--spec-rl", help="Return loss (dB) the match must reach (for the headroom verdict)."),
+    fixture: Optional[str] = FIXTURE,
+    port_delay: Optional[str] = PORT_DELAY,
+    port_length: Optional[str] = PORT_LENGTH,
+    velocity_factor: Optional[str] = VELOCITY_FACTOR,
+    eps_eff: Optional[str] = EPS_EFF,
+    port_loss: Optional[str] = PORT_LOSS,
+    port_loss_dc: Optional[str] = PORT_LOSS_DC,
+    loss_ref: Optional[str] = LOSS_REF,
 ) -> None:
     """Design a two-element L-network for a measured antenna."""
-    request = _request(at=at, band=band, port=port, z0=z0, series=series, parts=parts, max_mb=max_mb)
+    flags = FixtureFlags(fixture, port_delay, port_length, velocity_factor, eps_eff, port_loss,
+                         port_loss_dc, loss_ref)
+    request = _request(at=at, band=band, port=port, z0=z0, series=series, parts=parts,
+                       max_mb=max_mb, spec_rl=spec_rl, fixture=flags)
     plot_path = _checked_plot_path(plot)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", IngestWarning)
-        sweep = read_sweep(file, port=request.port, z0=request.z0_ohm, max_bytes=request.max_bytes)
-    # Ingest -> matching hand-over. From here on `sweep` is the load the network is designed
-    # for; a fixture chain (pipeline.deembed) is applied to it at exactly this point.
-    result = _solve(sweep, request)
+        raw = read_sweep(file, port=request.port, z0=request.z0_ohm, max_bytes=request.max_bytes)
+    # Ingest -> de-embed -> match: from here on `sweep` is the load at the antenna's feed.
+    sweep = request.fixture.apply(raw)
+    result = _solve(raw, sweep, request)
     if plot_path is not None:
         _write_plot(plot_path, result)
     for warning in caught:
         print(f"matchbay: warning: {warning.message}", file=sys.stderr)
+    caution = passivity_warning(sweep)
+    if caution:
+        print(f"matchbay: warning: {sweep.provenance.source}: {caution}", file=sys.stderr)
     if as_json:
         print(json.dumps(result_json(result), indent=2))
     else:
@@ -97,7 +120,7 @@ def match(
 
 # --- options ----------------------------------------------------------------------------
 
-def _request(*, at, band, port, z0, series, parts, max_mb) -> MatchRequest:
+def _request(*, at, band, port, z0, series, parts, max_mb, spec_rl, fixture: FixtureFlags) -> MatchRequest:
     if (at is None) == (band is None):
         raise ConfigError("give exactly one of --at F (e.g. 915M) or --band F1:F2 (e.g. 902M:928M)",
                           where="--at/--band")
@@ -113,11 +136,15 @@ def _request(*, at, band, port, z0, series, parts, max_mb) -> MatchRequest:
     max_mb = float(defaults["max_file_mb"] if max_mb is None else max_mb)
     if not (np.isfinite(max_mb) and max_mb > 0):
         raise ConfigError(f"size limit {max_mb:g} MB must be positive", where="--max-mb")
+    spec = float(defaults["spec_rl_db"] if spec_rl is None else spec_rl)
+    if not (np.isfinite(spec) and spec > 0):
+        raise ConfigError(f"spec {spec:g} dB must be a positive return loss", where="--spec-rl")
     chosen_series = series or defaults["series_at" if single else "series_band"]
     return MatchRequest(band_hz=band_hz, single_frequency=single, z0_ohm=z0,
                         series=check_series(chosen_series, where="--series"),
                         parts=load_parts(parts or defaults["parts"]), port=port,
-                        max_bytes=int(max_mb * 1024 ** 2))
+                        max_bytes=int(max_mb * 1024 ** 2), fixture=fixture.chain(),
+                        spec_rl_db=spec)
 
 
 def _option(parse, text: str, flag: str):
@@ -155,12 +182,17 @@ def _gamma_at(sweep: Sweep, freq_hz: float) -> complex:
     return complex(np.interp(freq_hz, f, s.real), np.interp(freq_hz, f, s.imag))
 
 
-def _solve(sweep: Sweep, request: MatchRequest) -> MatchResult:
-    """Match the sweep at one frequency or over the band, as the request says."""
+def _solve(raw: Sweep, sweep: Sweep, request: MatchRequest) -> MatchResult:
+    """Match the (de-embedded) sweep at one frequency or over the band, as asked; for a
+    band, also the Bode-Fano headroom of the best network."""
     solve = _solve_at if request.single_frequency else _solve_band
     before, solutions, previews = solve(sweep, request)
-    return MatchResult(sweep=sweep, request=request, return_loss_before_db=before,
-                       solutions=solutions, previews=previews)
+    headroom = None
+    if not request.single_frequency:
+        headroom = analyse_band(sweep.freq_hz, sweep.z_ohm, request.band_hz,
+                                solutions[0].return_loss_db, request.spec_rl_db)
+    return MatchResult(raw=raw, sweep=sweep, request=request, return_loss_before_db=before,
+                       solutions=solutions, previews=previews, headroom=headroom)
 
 
 def _solve_at(sweep: Sweep, request: MatchRequest):
@@ -233,6 +265,8 @@ def result_json(result: MatchResult) -> dict:
         "series": request.series,
         "parts": request.parts.as_dict(),
         "fixture": list(prov.fixture),
+        "spec_rl_db": request.spec_rl_db,
+        "headroom": None if result.headroom is None else result.headroom.as_dict(),
     }
 
 
@@ -258,6 +292,8 @@ def _print_readable(result: MatchResult, plot_path: Path | None) -> None:
     console.print(f"S{prov.port}{prov.port}, {sweep.freq_hz.size} points "
                   f"{format_si(sweep.freq_hz[0], 'Hz', 4)} – {format_si(sweep.freq_hz[-1], 'Hz', 4)}, "
                   f"z0 {request.z0_ohm:g} Ω")
+    for line in request.fixture.summary():
+        console.print(f"de-embedded: {line}")
     console.print(f"Return loss before matching {where}: [bold]{_rl_text(result.return_loss_before_db)}[/]"
                   f" (VSWR {_vswr_text(result.return_loss_before_db)})")
 
@@ -290,6 +326,12 @@ def _print_readable(result: MatchResult, plot_path: Path | None) -> None:
                   f"{'' if request.parts.is_ideal else ' (Q, ESR, self-resonance modelled)'}; "
                   f"power to antenna: worst fraction of the available power "
                   f"{'at f' if request.single_frequency else 'over the band'}.[/]")
+    if result.headroom is not None:
+        h = result.headroom.as_dict()
+        if h["rl_bound_db"] is not None:
+            console.print(f"Bode–Fano limit for this antenna over the band (Q ≈ {h['q_estimate']:.1f}): "
+                          f"{_rl_text(h['rl_bound_db'])} with an ideal network of any order.")
+        console.print(f"Headroom: {h['verdict']}")
     console.print("[dim]Check on the board: part tolerances, pads and nearby ground shift the match.[/]")
     if plot_path is not None:
         console.print(f"plot written to {plot_path}")
@@ -304,8 +346,10 @@ def _write_plot(path: Path, result: MatchResult) -> None:
     lo, hi = request.band_hz
     span = (f"at {format_si(lo, 'Hz', 4)}" if request.single_frequency
             else f"over {format_si(lo, 'Hz', 4)} – {format_si(hi, 'Hz', 4)}")
+    bound = None if result.headroom is None else result.headroom.as_dict()["rl_bound_db"]
     try:
         plot_match(path, sweep.freq_hz, sweep.s11, after, request.band_hz, request.z0_ohm,
-                   best.elements, title=f"{sweep.provenance.dut_id}: L-network match {span}")
+                   best.elements, title=f"{sweep.provenance.dut_id}: L-network match {span}",
+                   rl_bound_db=bound, spec_rl_db=None if request.single_frequency else request.spec_rl_db)
     except OSError as error:
         raise MatchbayError(f"cannot write the plot: {error.strerror or error}", where=str(path)) from None

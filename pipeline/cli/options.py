@@ -7,6 +7,11 @@ on the command line, then the station file, then ``configs/default.toml``.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+from typing import Optional
+
+import typer
+
 from pipeline.config import check_keys, load_defaults, load_toml, resolve
 from pipeline.errors import ConfigError
 from pipeline.units import parse_band
@@ -15,6 +20,41 @@ STATION_KEYS = frozenset({
     "band", "z0", "spec_rl", "series", "parts", "fixture", "port", "max_mb", "lot",
     "watch",
 })
+
+
+@dataclass(frozen=True)
+class FixtureFlags:
+    """The fixture flags as typed (strings); see :func:`pipeline.deembed.chain_for_cli`."""
+
+    fixture: Optional[str] = None
+    port_delay: Optional[str] = None
+    port_length: Optional[str] = None
+    velocity_factor: Optional[str] = None
+    eps_eff: Optional[str] = None
+    port_loss: Optional[str] = None
+    port_loss_dc: Optional[str] = None
+    loss_ref: Optional[str] = None
+
+    def chain(self, station_fixture: str | None = None):
+        """The fixture chain these flags describe (a station's fixture when none is given)."""
+        from pipeline.deembed import chain_for_cli
+
+        flags = {k: v for k, v in self.__dict__.items() if k != "fixture"}
+        fixture = self.fixture
+        if fixture is None and all(v is None for v in flags.values()):
+            fixture = station_fixture
+        return chain_for_cli(fixture, **flags)
+
+
+# Typer options shared by every command that de-embeds; each command lists them by name.
+FIXTURE = typer.Option(None, "--fixture", help="Fixture chain: a name under configs/fixtures/ or a TOML file.")
+PORT_DELAY = typer.Option(None, "--port-delay", help="Port extension: one-way delay, e.g. 85p.")
+PORT_LENGTH = typer.Option(None, "--port-length", help="Port extension as a length, e.g. 40mm (with --velocity-factor or --eps-eff).")
+VELOCITY_FACTOR = typer.Option(None, "--velocity-factor", help="Velocity factor of the --port-length line, 0 < v <= 1.")
+EPS_EFF = typer.Option(None, "--eps-eff", help="Effective permittivity of the --port-length line.")
+PORT_LOSS = typer.Option(None, "--port-loss", help="One-way fixture loss in dB at --loss-ref (grows with sqrt f).")
+PORT_LOSS_DC = typer.Option(None, "--port-loss-dc", help="One-way fixture loss in dB at 0 Hz.")
+LOSS_REF = typer.Option(None, "--loss-ref", help="Frequency at which --port-loss is given, e.g. 2.4G.")
 
 
 def load_station(name_or_path: str | None) -> dict:
@@ -36,15 +76,16 @@ def _pick(flag, station: dict, key: str, default):
 
 def build_settings(*, band: str | None, z0: float | None = None, spec_rl: float | None = None,
                    series: str | None = None, parts: str | None = None,
-                   fixture: str | None = None, port_delay: str | None = None,
+                   fixture: FixtureFlags | str | None = None, port_delay: str | None = None,
                    port: int | None = None, max_mb: float | None = None, lot: str | None = None,
                    station: dict | None = None):
     """Settings for band matching from CLI values; a missing band is a one-line error."""
-    from pipeline.deembed import chain_for_cli
     from pipeline.parts import load_parts
     from pipeline.process import Settings
 
     station = station or {}
+    if not isinstance(fixture, FixtureFlags):      # TEMPORARY: until watch_cmd passes FixtureFlags
+        fixture = FixtureFlags(fixture, port_delay)
     defaults = load_defaults()
     band_text = _pick(band, station, "band", None)
     if not band_text:
@@ -55,7 +96,7 @@ def build_settings(*, band: str | None, z0: float | None = None, spec_rl: float 
         spec_rl_db=float(_pick(spec_rl, station, "spec_rl", defaults["spec_rl_db"])),
         series=str(_pick(series, station, "series", defaults["series_band"])),
         parts=load_parts(_pick(parts, station, "parts", defaults["parts"])),
-        fixture=chain_for_cli(_pick(fixture, station, "fixture", None), port_delay),
+        fixture=(fixture or FixtureFlags()).chain(station.get("fixture")),
         port=int(_pick(port, station, "port", 1)),
         max_bytes=int(float(_pick(max_mb, station, "max_mb", defaults["max_file_mb"])) * 1024 ** 2),
         lot=str(_pick(lot, station, "lot", "")),

@@ -43,10 +43,6 @@ STORE_ARG = typer.Argument(..., help="HDF5 results store.", show_default=False)
 LOT_OPTION = typer.Option(None, "--lot", help="Only this lot.")
 
 
-def _console() -> Console:
-    return Console()
-
-
 def _fail(text: str) -> Text:
     return Text(text, style="bold red")
 
@@ -58,6 +54,10 @@ def _cells(*values) -> list[Text]:
 
 def _db(value: float) -> str:
     return "—" if value is None or not math.isfinite(value) else f"{value:.1f}"
+
+
+def _db_unit(value: float) -> str:
+    return "—" if value is None or not math.isfinite(value) else f"{value:.1f} dB"
 
 
 def element_words(element: dict) -> str:
@@ -100,7 +100,7 @@ def list_units(
                               _db(row["rl_after_worst_db"]), _db(row["spec_rl_db"]),
                               "yes" if row["pass_after"] else _fail("no"),
                               network_words(_elements_of(row["elements"]))))
-    _console().print(table)
+    Console().print(table)
 
 
 # --------------------------------------------------------------------------- show
@@ -120,9 +120,10 @@ def _pick_record(results: ResultsStore, which: str) -> int:
 
 
 def _key_value_table(title: str, rows: list[tuple]) -> Table:
-    table = Table(title=Text(title), show_header=False, title_justify="left")
+    table = Table(title=Text(title, style="bold"), show_header=False, title_justify="left",
+                  min_width=len(title) + 4)
     table.add_column("", style="bold")
-    table.add_column("")
+    table.add_column("", overflow="fold")
     for key, value in rows:
         table.add_row(*_cells(key, value))
     return table
@@ -137,11 +138,11 @@ def _metrics_rows(unit: UnitRecord) -> list[tuple[str, str]]:
     rows = [
         ("band", f"{_hz(unit.band_lo_hz)} – {_hz(unit.band_hi_hz)}"),
         ("z0", f"{unit.z0_ohm:g} ohm"),
-        ("spec", f"return loss >= {_db(unit.spec_rl_db)} dB over the band"),
-        ("return loss, worst in band", f"{_db(unit.rl_before_worst_db)} dB before, "
-                                       f"{_db(unit.rl_after_worst_db)} dB after"),
-        ("return loss, band centre", f"{_db(unit.rl_before_center_db)} dB before, "
-                                     f"{_db(unit.rl_after_center_db)} dB after"),
+        ("spec", f"return loss >= {_db_unit(unit.spec_rl_db)} over the band"),
+        ("return loss, worst in band", f"{_db_unit(unit.rl_before_worst_db)} before, "
+                                       f"{_db_unit(unit.rl_after_worst_db)} after"),
+        ("return loss, band centre", f"{_db_unit(unit.rl_before_center_db)} before, "
+                                     f"{_db_unit(unit.rl_after_center_db)} after"),
         ("bandwidth at the spec", f"{_hz(unit.bw_before_hz)} before, {_hz(unit.bw_after_hz)} after"),
         ("at the spec", f"{verdict[unit.pass_before]} before, {verdict[unit.pass_after]} after"),
     ]
@@ -184,7 +185,7 @@ def show(
     with ResultsStore(store, mode="r") as results:
         unit = results.get_unit(_pick_record(results, which))
         latest = results.latest_index_for(unit.dut_id)
-    console = _console()
+    console = Console()
     console.print(_key_value_table(f"Unit {unit.dut_id}", _provenance_rows(unit, latest)))
     console.print(_key_value_table("Metrics", _metrics_rows(unit)))
     network = [("topology", unit.topology or "—")]
@@ -195,7 +196,7 @@ def show(
     fixture = [(f"{i}", _step_words(step)) for i, step in enumerate(unit.fixture, 1)] or [("", "none")]
     console.print(_key_value_table("Fixture removed (analyzer side first)", fixture))
     parts = [("series", unit.series or "—")]
-    parts += [(key, json.dumps(value)) for key, value in unit.parts.items()]
+    parts += [(f"library {key}", json.dumps(value)) for key, value in unit.parts.items()]
     console.print(_key_value_table("Parts", parts))
 
 
@@ -207,13 +208,17 @@ def _model_words(element: dict) -> str:
 # --------------------------------------------------------------------------- export
 
 def _export_frame(frame: pd.DataFrame) -> pd.DataFrame:
-    """The contract columns first (renamed), then every other metric column."""
+    """The contract columns first (renamed), then every other column; times in ISO 8601."""
     out = pd.DataFrame({name: frame[column] for name, column in CONTRACT_COLUMNS.items()})
     out.insert(0, "record", frame.index)
     taken = set(CONTRACT_COLUMNS.values())
     for column in frame.columns:
-        if column not in taken:
-            out[column] = frame[column].to_numpy()
+        if column in taken:
+            continue
+        values = frame[column]
+        if isinstance(values.dtype, pd.DatetimeTZDtype):
+            values = values.map(lambda t: "" if pd.isna(t) else t.isoformat())
+        out[column] = values
     return out
 
 
@@ -242,7 +247,7 @@ def export(
     with ResultsStore(store, mode="r") as results:
         frame = results.units_frame(lot=lot)
     write_csv_atomically(_export_frame(frame), csv)
-    _console().print(f"wrote {len(frame)} unit(s) to {csv}")
+    Console().print(f"wrote {len(frame)} unit(s) to {csv}")
 
 
 # --------------------------------------------------------------------------- summary
@@ -286,11 +291,11 @@ def summary(store: Path = STORE_ARG, lot: Optional[str] = LOT_OPTION):
         lots = [lot] if lot is not None else results.lots() or [""]
         blocks = [(name, results.units_frame(lot=name), results.failures_frame(lot=name),
                    results.get_lot(name)) for name in lots]
-    console = _console()
+    console = Console()
     for name, frame, failures, stored in blocks:
         rows = _lot_rows(frame)
         rows.append(("failed files", str(len(failures))))
-        rows += [(f"  {Path(src).name}", reason) for src, reason in zip(failures["source"], failures["reason"])]
+        rows += [(f"  {source}", reason) for source, reason in zip(failures["source"], failures["reason"])]
         rows += _stored_lot_rows(stored) if stored else [("shared network", "none stored")]
         console.print(_key_value_table(f"Lot {name or '(none)'}", rows))
 

@@ -143,7 +143,7 @@ def _status_display(console: Console):
                 line = status.line()
                 if line != shown[0]:
                     shown[0] = line
-                    live.update(Text(line))
+                    live.update(Text(line, no_wrap=True, overflow="ellipsis"))
 
             yield show
         return
