@@ -61,9 +61,11 @@ def process_lot(store: ResultsStore, paths: list[str], settings, *, workers=None
 
 
 def lot_records(store: ResultsStore, lot: str, settings) -> list:
-    """The lot's latest record per DUT that was made with these settings."""
+    """The lot's latest record per DUT made with these settings, sorted by DUT id (so the
+    lot analysis does not depend on the order in which workers finished)."""
     digest = settings.digest()
-    return [r for r in (store.get_unit(i) for i in store.find(lot=lot)) if r.settings_hash == digest]
+    records = [r for r in store.get_units(store.find(lot=lot)) if r.settings_hash == digest]
+    return sorted(records, key=lambda r: r.dut_id)
 
 
 def analyse_lot(store: ResultsStore, lot: str, settings, *, mc_trials: int = 2000,

@@ -48,6 +48,7 @@ _SNAP_FINALISTS = 3      # best grid points per layout scored again on every ban
 _SNAP_ROUNDS = 6         # bound on re-centring the window of standard values
 _FD_STEP = 1e-7          # log-value step of the finite-difference Jacobian in _polish
 _POLISH_ROUNDS = 4       # bound on adding peak points to the polishing constraints
+_POLISH_MARGIN = 0.1     # peaks of |Gamma| within 10 % of the largest constrain the polish
 _MIN_GAIN_DB = 0.01      # a network must beat the bare load by this much to be listed
 
 
@@ -452,9 +453,10 @@ def _nelder_mead(rows: _Rows, x0, step, precision, band: _Band) -> np.ndarray:
     along the ridges that a max over frequency forms, where a fixed-stencil search
     stalls (measured: 0.03 dB short on a two-edge ridge). scipy's own Nelder-Mead, one
     row at a time from the same seeds to the same precision, finds the same optima but
-    costs one scalar call per candidate, each paying numpy's per-call overhead
-    (measured on tests/benchmarks/bench_match.py: 57 ms against 41 ms with E24 values,
-    222 ms against 106 ms with exact values).
+    makes one scalar call per candidate, each paying numpy's per-call overhead: the
+    whole band match of tests/benchmarks/bench_match.py took about 1.5 times as long
+    (79 ms against 48 ms with E24 values, 54 ms against 37 ms with exact values, on a
+    shared 2-core machine).
     """
     lo, hi = rows.lo[:, None, :], rows.hi[:, None, :]
     index, n = np.arange(x0.shape[0])[:, None], x0.shape[1]
@@ -534,9 +536,11 @@ def _continuous_optima(family: _Rows, precision: _Precision, band: _Band) -> np.
 
 def _worst_points(mag: np.ndarray) -> np.ndarray:
     """Band-point indices where the worst case lives: the local maxima of |Gamma| over
-    frequency (band edges included) and their neighbours."""
+    frequency (band edges included) within ``_POLISH_MARGIN`` of the largest, and their
+    neighbours."""
     padded = np.concatenate(([-np.inf], mag, [-np.inf]))
-    peaks = np.flatnonzero((mag >= padded[:-2]) & (mag >= padded[2:]))
+    peak = (mag >= padded[:-2]) & (mag >= padded[2:]) & (mag >= (1 - _POLISH_MARGIN) * mag.max())
+    peaks = np.flatnonzero(peak)
     return np.unique(np.clip(np.concatenate([peaks - 1, peaks, peaks + 1]), 0, mag.size - 1))
 
 
@@ -578,8 +582,9 @@ def _polish(layout: Topology, x: np.ndarray, band: _Band) -> np.ndarray:
     The minimax is posed in its smooth epigraph form (:func:`_epigraph_slsqp`), which
     scipy's SLSQP follows along the ridges where the max over frequency has kinks
     (Nelder-Mead can stall on a narrow one: measured 7.891 dB where 7.896 dB was
-    possible). The constraints are the points around the peaks of |Gamma| over
-    frequency; when the result peaks elsewhere those points join and it is solved again.
+    possible). The constraints are the points around the highest peaks of |Gamma| over
+    frequency (SLSQP's cost grows fast with their number); when the result peaks
+    elsewhere, the new peaks join and it is solved again.
     The result is kept only if it is better over every band point.
     """
     rows = _Rows.of([layout], band.parts)

@@ -45,9 +45,9 @@ import numpy as np
 import pipeline
 from pipeline import metrics
 from pipeline import report_figures as figures
-from pipeline.elements import Element, PartModel
+from pipeline.elements import Element
 from pipeline.errors import ConfigError, StoreError
-from pipeline.headroom import Bound, Headroom, summarise_lot
+from pipeline.headroom import summarise_lot
 from pipeline.match import predicted_gamma
 from pipeline.plots import element_text
 from pipeline.store import ResultsStore, UnitRecord, settings_hash
@@ -76,30 +76,13 @@ VERDICT_WORDS = {
 
 # =========================================================================== the data
 
-def elements_from_json(items: Sequence[dict]) -> tuple[Element, ...]:
-    """Elements from their stored JSON shape (interfaces.md): position, kind, value and the
-    optional model keys q, q_ref_hz, esr_ohm, srf_hz."""
-    return tuple(Element(d["position"], d["kind"], float(d["value"]),
-                         PartModel(q=d.get("q"), q_ref_hz=d.get("q_ref_hz"),
-                                   esr_ohm=d.get("esr_ohm"), srf_hz=d.get("srf_hz")))
-                 for d in items)
-
-
 def _finite_or_nan(value) -> float:
     return float("nan") if value is None else float(value)
 
 
-def headroom_from_dict(d: dict, band_hz: tuple[float, float]) -> Headroom:
-    """A :class:`~pipeline.headroom.Headroom` rebuilt from its stored ``as_dict()`` form
-    (null -> NaN), so :func:`pipeline.headroom.summarise_lot` can summarise stored units."""
-    bound = Bound(q=_finite_or_nan(d.get("q_estimate")), band_hz=tuple(band_hz),
-                  center_hz=_finite_or_nan(d.get("q_center_hz")), fbw=_finite_or_nan(d.get("fbw")),
-                  gamma_min=_finite_or_nan(d.get("gamma_min")),
-                  rl_bound_db=_finite_or_nan(d.get("rl_bound_db")))
-    return Headroom(bound=bound, rl_achieved_db=_finite_or_nan(d.get("rl_achieved_db")),
-                    spec_rl_db=d.get("spec_rl_db"), gap_db=_finite_or_nan(d.get("headroom_db")),
-                    verdict_code=str(d.get("verdict_code", "no_estimate")),
-                    verdict=str(d.get("verdict", "")), estimate_rough=bool(d.get("estimate_rough")))
+def _elements(items: Sequence[dict]) -> tuple[Element, ...]:
+    """A network back from its stored JSON list (interfaces.md shape)."""
+    return tuple(Element.from_dict(d) for d in items)
 
 
 @dataclass(frozen=True, eq=False)
@@ -181,7 +164,7 @@ def _shared_curve(record: UnitRecord, elements: tuple[Element, ...]) -> np.ndarr
 
 def _unit_view(record: UnitRecord, shared: tuple[Element, ...] | None,
                shared_worst: dict[str, float]) -> UnitView:
-    elements = elements_from_json(record.elements)
+    elements = _elements(record.elements)
     if shared is None:
         return UnitView(record, elements)
     curve = _shared_curve(record, shared)
@@ -225,9 +208,10 @@ def load_lot(store: ResultsStore, lot: str | None = None) -> LotView:
         settings, digest = {}, ""
     keep = frame["settings_hash"] == digest
     shared_dict = (summary or {}).get("shared")
-    shared = elements_from_json(shared_dict["elements"]) if shared_dict else None
+    shared = _elements(shared_dict["elements"]) if shared_dict else None
     shared_worst = dict(zip(shared_dict["unit_ids"], shared_dict["worst_rl_db"])) if shared_dict else {}
-    units = tuple(_unit_view(store.get_unit(int(i)), shared, shared_worst) for i in frame.index[keep])
+    records = store.get_units(frame.index[keep])
+    units = tuple(_unit_view(record, shared, shared_worst) for record in records)
     failures = store.failures_frame(lot=lot)
     return LotView(lot=lot, store_path=str(store.path), summary=summary, settings=settings,
                    units=units, failures=tuple(zip(failures["source"], failures["reason"])),
@@ -250,7 +234,7 @@ def load_unit(store: ResultsStore, dut_id: str, lot: str | None = None) -> tuple
     shared_dict = (summary or {}).get("shared")
     if shared_dict and settings_hash(summary.get("settings", {})) == record.settings_hash:
         worst = dict(zip(shared_dict["unit_ids"], shared_dict["worst_rl_db"]))
-        return _unit_view(record, elements_from_json(shared_dict["elements"]), worst), summary
+        return _unit_view(record, _elements(shared_dict["elements"]), worst), summary
     return _unit_view(record, None, {}), summary
 
 
@@ -346,7 +330,8 @@ overflow-wrap:anywhere}
 @media (max-width:560px){.cards{grid-template-columns:1fr}.card.wide{grid-column:auto}}
 .card{background:var(--card);border-radius:12px;padding:16px 18px 15px;
 box-shadow:0 1px 2px rgba(31,45,57,.08),0 6px 20px rgba(31,45,57,.07);border-top:4px solid var(--after)}
-.card.wide{border-top-color:var(--shunt)}.card.warm{border-top-color:var(--before)}.card.bad{border-top-color:var(--fail)}
+.card.wide{border-top-color:var(--shunt)}.card.warm{border-top-color:var(--before)}
+.card.bad{border-top-color:var(--fail)}
 .card.ok{border-top-color:var(--pass)}.card.neutral{border-top-color:#9aa5b1}
 .label{font-size:11.5px;text-transform:uppercase;letter-spacing:.1em;color:var(--muted);
 font-weight:600;margin:0}
@@ -556,7 +541,8 @@ def _lot_cards(view: LotView, arrays: dict) -> str:
                                f"{_db(float(np.nanmedian(bound)) if np.isfinite(bound).any() else None)} dB "
                                "(the best any lossless network could do)", "neutral"))
     n_bad_files = len(view.failures)
-    cards.append(_card("Units", f"{n}" + (f' <small>+ {n_bad_files} unreadable</small>' if n_bad_files else ""),
+    unreadable = f" <small>+ {n_bad_files} unreadable</small>" if n_bad_files else ""
+    cards.append(_card("Units", f"{n}{unreadable}",
                        "stored and matched"
                        + (f"; {n_bad_files} file(s) could not be read (listed below)" if n_bad_files else "")
                        + (f"; {view.n_other_settings} more stored with other settings (not shown)"
@@ -587,11 +573,12 @@ def _shared_section(view: LotView) -> str:
     for t in shared.get("per_topology", []):
         chosen = t.get("topology") == shared.get("topology")
         mark = ' <span class="badge pass">chosen</span>' if chosen else ""
-        elements = elements_from_json(t.get("elements", []))
+        elements = _elements(t.get("elements", []))
         rows.append(
             f'<tr><td>{escape(str(t.get("topology", "")))}{mark}</td>'
             f'<td>{escape(_network_short(elements))}</td>'
-            f'<td class="num">{int(t.get("n_pass", 0))}</td><td class="num">{_pct(t.get("yield_fraction"))}</td>'
+            f'<td class="num">{int(t.get("n_pass", 0))}</td>'
+            f'<td class="num">{_pct(t.get("yield_fraction"))}</td>'
             f'<td class="num">{_db(t.get("median_worst_rl_db"))}</td>'
             f'<td class="num">{int(t.get("n_candidates", 0))}</td></tr>')
     return (
@@ -616,7 +603,8 @@ def _yield_table(view: LotView, arrays: dict) -> str:
     rows.append(("Each unit with its own network", arrays["own"]))
     html_rows = [f'<tr><td>{name}</td><td class="num">{int(np.sum(v >= spec))} / {v.size}</td>'
                  f'<td class="num"><b>{_pct(float(np.mean(v >= spec)))}</b></td>'
-                 f'<td class="num">{_db(float(np.median(v)))}</td><td class="num">{_db(float(np.min(v)))}</td></tr>'
+                 f'<td class="num">{_db(float(np.median(v)))}</td>'
+                 f'<td class="num">{_db(float(np.min(v)))}</td></tr>'
                  for name, v in rows]
     tolerance = summary.get("tolerance")
     if tolerance:
@@ -680,16 +668,17 @@ def _headroom_section(view: LotView) -> str:
     with_headroom = [u for u in view.units if u.record.headroom]
     if not with_headroom:
         return ""
-    stats = summarise_lot(headroom_from_dict(u.record.headroom, u.band_hz) for u in with_headroom)
+    stats = summarise_lot(u.record.headroom for u in with_headroom)
     picture = figures.headroom_figure(np.array([_finite_or_nan(u.record.headroom.get("q_estimate"))
                                                 for u in with_headroom]),
                                       np.array([_finite_or_nan(u.record.headroom.get("headroom_db"))
                                                 for u in with_headroom]))
     rows = []
-    for key, name in (("q_estimate", "Q at the band centre"), ("rl_bound_db", "Bode–Fano bound (dB)"),
-                      ("headroom_db", "Headroom (dB)")):
+    for key, name, form in (("q_estimate", "Q at the band centre", "{:.3g}"),
+                            ("rl_bound_db", "Bode–Fano bound (dB)", "{:.1f}"),
+                            ("headroom_db", "Headroom (dB)", "{:.1f}")):
         s = stats.get(key)
-        cells = "".join(f'<td class="num">{s[k]:.3g}</td>' if s else '<td class="num">–</td>'
+        cells = "".join(f'<td class="num">{form.format(s[k])}</td>' if s else '<td class="num">–</td>'
                         for k in ("min", "p10", "median", "p90", "max"))
         rows.append(f"<tr><td>{name}</td>{cells}<td class=\"num\">{s['count'] if s else 0}</td></tr>")
     counts = stats["verdicts"]
@@ -882,7 +871,7 @@ def _shared_cards_for_unit(unit: UnitView, summary: dict) -> list[str]:
               f"{'passes' if ok else 'fails'} the spec · VSWR {_vswr_of_rl(rl)} · |Γ| {_gamma_of_rl(rl)}",
               "ok" if ok else "bad"),
         _card(f"Shared network of lot {escape(unit.record.lot)}",
-              _chain_html(elements_from_json(shared["elements"])),
+              _chain_html(_elements(shared["elements"])),
               f"{escape(str(shared.get('series', '')))} values · arrangement "
               f"{escape(str(shared.get('topology', '')))}", "wide"),
         _card("Lot yield with it", _pct(shared.get("yield_fraction")),
@@ -954,10 +943,13 @@ def _write_atomically(path: Path, text: str) -> Path:
     return path
 
 
-def _output_folder(out_dir: str | Path) -> Path:
-    folder = Path(out_dir)
+def _check_output_folder(folder: Path) -> None:
+    """Fail before any work when ``folder`` cannot be the output folder (it is a file)."""
     if folder.exists() and not folder.is_dir():
         raise ConfigError("is not a folder", where=str(folder))
+
+
+def _make_output_folder(folder: Path) -> Path:
     try:
         folder.mkdir(parents=True, exist_ok=True)
     except OSError as error:
@@ -972,12 +964,15 @@ def write_report(store_path: str | Path, out_dir: str | Path, *, lot: str | None
     """Write the report of a lot (or, with ``dut``, of one unit) into ``out_dir``; its path.
 
     The file is ``<lot>.html`` or ``<dut>.html`` (characters other than letters, digits,
-    '.', '_' and '-' become '_'). A missing store, an unknown lot or unit raise
-    :class:`~pipeline.errors.StoreError`; nothing is written then. The store is read
-    first and closed before any drawing starts.
+    '.', '_' and '-' become '_'); ``out_dir`` is created when missing. A missing store,
+    an unknown lot or unit raise :class:`~pipeline.errors.StoreError`, an output folder
+    that is a file :class:`~pipeline.errors.ConfigError`; nothing is written then. The
+    store is read first and closed before any drawing starts.
     """
     if unit_plots < 0:
         raise ConfigError(f"--unit-plots must be 0 or more, not {unit_plots}", where="--unit-plots")
+    folder = Path(out_dir)
+    _check_output_folder(folder)
     with ResultsStore(store_path, mode="r") as store:
         if dut is not None:
             unit, summary = load_unit(store, dut, lot)
@@ -987,7 +982,7 @@ def write_report(store_path: str | Path, out_dir: str | Path, *, lot: str | None
         stem, page = unit.record.dut_id, unit_report_html(unit, summary, str(store_path))
     else:
         stem, page = view.lot, lot_report_html(view, unit_plots=unit_plots, workers=workers)
-    folder = _output_folder(out_dir)
+    _make_output_folder(folder)
     try:
         return _write_atomically(folder / f"{_safe_file_stem(stem)}.html", page)
     except OSError as error:

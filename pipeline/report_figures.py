@@ -12,10 +12,11 @@ Lot figures, each a function of plain arrays (no store, no files):
 * :func:`headroom_figure` how Q and the matching headroom (Bode–Fano bound minus the
   achieved return loss) spread across the lot.
 
-One unit: :func:`unit_figure` (many: :func:`unit_figures`, in worker processes), the two-panel match figure of :mod:`pipeline.plots` (return
-loss with the band shaded and the Bode–Fano bound; Smith chart with the load, the path of
-each part along its constant-resistance or constant-conductance circle and the matched
-point), plus the shared network's curve. The Smith chart grid, spec circle, match path and
+One unit: :func:`unit_figure` (many: :func:`unit_figures`, in worker processes), the
+two-panel match figure of :mod:`pipeline.plots` (return loss with the band shaded and the
+Bode–Fano bound; Smith chart with the load, the path of each part along its
+constant-resistance or constant-conductance circle and the matched point), plus the
+shared network's curve. The Smith chart grid, spec circle, match path and
 VSWR axis all come from :mod:`pipeline.plots`.
 
 Conventions as everywhere: Gamma is S11 at the real z0, return loss positive dB, Hz inside.
@@ -36,7 +37,7 @@ import numpy as np
 
 from pipeline import metrics
 from pipeline.elements import Element
-from pipeline.plots import (AFTER, BAND_FILL, BEFORE, INK, MUTED, OTHER, SPEC, draw_smith_grid,
+from pipeline.plots import (AFTER, BAND_FILL, BEFORE, INK, MUTED, SPEC, draw_smith_grid,
                             draw_spec_circle, draw_vswr_axis, freq_scale, match_figure)
 
 DPI = 110
@@ -54,13 +55,19 @@ class Picture:
     height: int
 
 
-def _figure(size_in: tuple[float, float]):
+def _load_matplotlib():
+    """Import matplotlib with the Agg backend (lazily: the command line starts faster)."""
     import matplotlib
 
     matplotlib.use("Agg")
+    from matplotlib.backends import backend_agg  # noqa: F401
     from matplotlib.figure import Figure
 
-    return Figure(figsize=size_in, dpi=DPI, facecolor="white")
+    return Figure
+
+
+def _figure(size_in: tuple[float, float]):
+    return _load_matplotlib()(figsize=size_in, dpi=DPI, facecolor="white")
 
 
 def to_picture(fig) -> Picture:
@@ -162,6 +169,17 @@ def _shade_band(ax, band_hz, scale: float) -> None:
         ax.axvline(lo / scale, color=BAND_FILL, lw=6, zorder=0)
 
 
+def _bundle(ax, xs, ys, pick: np.ndarray, colour: str, width: float, alpha: float,
+            zorder: int = 2) -> None:
+    """The picked units' curves (x, y per unit) as one LineCollection."""
+    from matplotlib.collections import LineCollection
+
+    if pick.any():
+        ax.add_collection(LineCollection(_segments([x for x, k in zip(xs, pick) if k],
+                                                   [y for y, k in zip(ys, pick) if k]),
+                                         colors=colour, linewidths=width, alpha=alpha, zorder=zorder))
+
+
 def rl_curves(freqs: Sequence[np.ndarray], before: Sequence[np.ndarray],
               after: Sequence[np.ndarray], failing: np.ndarray, band_hz: tuple[float, float],
               spec_rl_db: float, after_label: str = "with the shared network") -> Picture:
@@ -169,34 +187,24 @@ def rl_curves(freqs: Sequence[np.ndarray], before: Sequence[np.ndarray],
 
     freqs, before, after : per unit, (N_u,) Hz and Gamma without / with the network.
     failing              : (U,) bool, units that miss the spec with the network (drawn red,
-                           on top).
+                           on top, in the right-hand panel).
+    Return loss above :data:`RL_TOP_DB` is drawn at the top edge.
     """
-    from matplotlib.collections import LineCollection
-
     fig = _figure((11.0, 4.2))
     scale, unit = freq_scale(np.asarray(freqs[0]))
-    f_lo = min(float(f[0]) for f in freqs) / scale
-    f_hi = max(float(f[-1]) for f in freqs) / scale
     xs = [np.asarray(f) / scale for f in freqs]
     failing = np.asarray(failing, dtype=bool)
     alpha = _alpha(len(freqs))
-    panels = ((0.06, "As measured (de-embedded)", before, BEFORE),
-              (0.53, f"{after_label[0].upper()}{after_label[1:]}", after, AFTER))
-    for left, title, gammas, colour in panels:
+    panels = ((0.06, "As measured (de-embedded)", before, BEFORE, np.zeros_like(failing)),
+              (0.53, f"{after_label[0].upper()}{after_label[1:]}", after, AFTER, failing))
+    for left, title, gammas, colour, red in panels:
         ax = fig.add_axes((left, 0.14, 0.40, 0.74))
-        rl = [np.minimum(metrics.return_loss_db(g), RL_TOP_DB) for g in gammas]
+        rls = [np.minimum(metrics.return_loss_db(g), RL_TOP_DB) for g in gammas]
         _shade_band(ax, band_hz, scale)
-        is_after = gammas is after
-        keep = ~failing if is_after else np.ones(len(rl), dtype=bool)
-        ax.add_collection(LineCollection(_segments([x for x, k in zip(xs, keep) if k],
-                                                   [r for r, k in zip(rl, keep) if k]),
-                                         colors=colour, linewidths=0.9, alpha=alpha))
-        if is_after and failing.any():
-            ax.add_collection(LineCollection(
-                _segments([x for x, k in zip(xs, failing) if k], [r for r, k in zip(rl, failing) if k]),
-                colors=FAIL, linewidths=1.0, alpha=max(alpha, 0.4), zorder=3))
+        _bundle(ax, xs, rls, ~red, colour, 0.9, alpha)
+        _bundle(ax, xs, rls, red, FAIL, 1.0, max(alpha, 0.4), zorder=3)
         ax.axhline(spec_rl_db, color=INK, lw=1.0, ls=":")
-        ax.set_xlim(f_lo, f_hi)
+        ax.set_xlim(min(x[0] for x in xs), max(x[-1] for x in xs))
         ax.set_ylim(0, RL_TOP_DB)
         ax.set_title(title, loc="left", fontsize=10.5, color=INK, fontweight="bold")
         ax.set_xlabel(f"Frequency ({unit})", color=INK)
@@ -204,10 +212,10 @@ def rl_curves(freqs: Sequence[np.ndarray], before: Sequence[np.ndarray],
             ax.set_ylabel("Return loss (dB)  — higher is better", color=INK)
         _style(ax)
         draw_vswr_axis(ax, RL_TOP_DB)
-        handles = [_proxy(colour, f"{len(rl) - int(is_after and failing.sum())} units", lw=1.5),
-                   _proxy(INK, f"spec {spec_rl_db:g} dB", lw=1.0, ls=":")]
-        if is_after and failing.any():
-            handles.insert(1, _proxy(FAIL, f"{int(failing.sum())} failing", lw=1.5))
+        handles = [_proxy(colour, f"{int((~red).sum())} units", lw=1.5)]
+        if red.any():
+            handles.append(_proxy(FAIL, f"{int(red.sum())} failing", lw=1.5))
+        handles.append(_proxy(INK, f"spec {spec_rl_db:g} dB", lw=1.0, ls=":"))
         ax.legend(handles=handles, loc="upper right", frameon=False, fontsize=8.5)
     return to_picture(fig)
 
@@ -221,23 +229,17 @@ def lot_smith(before: Sequence[np.ndarray], after: Sequence[np.ndarray], failing
     before, after : per unit, the in-band Gamma without / with the network.
     failing       : (U,) bool, units that miss the spec with the network (red, on top).
     """
-    from matplotlib.collections import LineCollection
-
     fig = _figure((5.6, 6.0))
     ax = fig.add_axes((0.03, 0.13, 0.94, 0.83))
     draw_smith_grid(ax)
     draw_spec_circle(ax, spec_rl_db)
     failing = np.asarray(failing, dtype=bool)
     alpha = _alpha(len(before))
-
-    def bundle(gammas, colour, width, a, z):
-        if gammas:
-            ax.add_collection(LineCollection(_segments([g.real for g in gammas], [g.imag for g in gammas]),
-                                             colors=colour, linewidths=width, alpha=a, zorder=z))
-
-    bundle(list(before), BEFORE, 1.2, alpha, 3)
-    bundle([g for g, bad in zip(after, failing) if not bad], AFTER, 1.2, alpha, 4)
-    bundle([g for g, bad in zip(after, failing) if bad], FAIL, 1.0, max(alpha, 0.35), 5)
+    _bundle(ax, [g.real for g in before], [g.imag for g in before], np.ones_like(failing),
+            BEFORE, 1.2, alpha, zorder=3)
+    x_after, y_after = [g.real for g in after], [g.imag for g in after]
+    _bundle(ax, x_after, y_after, ~failing, AFTER, 1.2, alpha, zorder=4)
+    _bundle(ax, x_after, y_after, failing, FAIL, 1.0, max(alpha, 0.35), zorder=5)
     handles = [_proxy(BEFORE, "as measured", lw=2), _proxy(AFTER, after_label, lw=2)]
     if failing.any():
         handles.append(_proxy(FAIL, f"failing {after_label}", lw=2))
@@ -313,7 +315,8 @@ def unit_figure(unit: UnitFigure) -> Picture:
 
 
 @contextmanager
-def unit_figures(units: Sequence[UnitFigure], workers: int | None = None) -> Iterator[Callable[[], list[Picture]]]:
+def unit_figures(units: Sequence[UnitFigure], workers: int | None = None
+                 ) -> Iterator[Callable[[], list[Picture]]]:
     """Render unit figures in the background while the caller draws something else.
 
     Use as ``with unit_figures(units, workers) as collect: ...; pictures = collect()``.
@@ -325,6 +328,7 @@ def unit_figures(units: Sequence[UnitFigure], workers: int | None = None) -> Ite
     if n <= 1:
         yield lambda: [unit_figure(u) for u in units]
         return
+    _load_matplotlib()               # imported once here, not in every (forked) worker
     with ProcessPoolExecutor(max_workers=n) as pool:
         futures = [pool.submit(unit_figure, u) for u in units]
         yield lambda: [f.result() for f in futures]

@@ -33,12 +33,13 @@ overflow (events lost) the writer flags are dropped and a rescan runs at once; p
 rescans also catch events dropped at ``stop()`` and polling gaps.
 
 Crash safety, for a watcher killed at any moment (SIGKILL, a crash; a power cut can lose
-what the operating system had not yet written, see :mod:`pipeline.store`): a good file is committed to the store first and moved second, so a restart finds
-it in the folder, sees its hash in the store and moves it as done without a second
-record. A bad file has its failure recorded first, then the sidecar written, then the
-file moved; a restart reads it again (failures are deterministic), sees the failure is
-already recorded, and finishes the sidecar and the move (an orphan sidecar left by the
-crash is overwritten with the same reason).
+what the operating system had not yet written, see :mod:`pipeline.store`): a good file is
+committed to the store first and moved second, so a restart finds it in the folder, sees
+its hash in the store and moves it as done without a second record. A bad file has its
+failure recorded first, then the sidecar written, then the file moved; a restart reads it
+again (failures are deterministic), sees the failure is already recorded, and finishes the
+sidecar and the move (an orphan sidecar left by the crash is overwritten with the same
+reason).
 """
 
 from __future__ import annotations
@@ -76,10 +77,13 @@ MAX_WAIT_S = 0.2            # longest sleep of the main loop (how soon a stop re
 COMMIT_WINDOW_S = 0.05      # records back within this time share one store commit (one flush), s
 COMMIT_BATCH = 32           # ... up to this many
 
-WATCH_KEYS = frozenset({
-    "folder", "store", "done_dir", "rejected_dir", "keep_processed", "stable_s", "polling",
-    "poll_interval_s", "rescan_s", "workers", "trust_close",
-})
+#: [watch] keys of a station file, with their defaults (``workers``: all cores); ``folder`` and
+#: ``store`` are read by the command. Relative folders are relative to the watched folder.
+WATCH_DEFAULTS = {
+    "done_dir": "done", "rejected_dir": "rejected", "keep_processed": False, "stable_s": 0.5,
+    "trust_close": True, "polling": False, "poll_interval_s": 2.0, "rescan_s": 10.0, "workers": None,
+}
+WATCH_KEYS = frozenset(WATCH_DEFAULTS) | {"folder", "store"}
 
 
 # --- options -------------------------------------------------------------------------------
@@ -93,58 +97,47 @@ class WatchOptions:
     rejected_dir    : bad files move here, each beside a ``.reason.txt`` sidecar.
     keep_processed  : leave processed files where they are instead of moving them.
     stable_s        : size and mtime must stay unchanged this long (completion rule 3).
+    trust_close     : a close after writing makes a file complete (rule 2). Set it false for
+                      a writer that closes and reopens the file between pieces; then the
+                      stability window decides (a close still ends the writer flag).
     polling         : use watchdog's PollingObserver (network shares: inotify does not see
                       other clients' writes) instead of the native observer.
     poll_interval_s : the polling observer's interval.
     rescan_s        : full rescan of the folder this often (catches lost events).
     workers         : worker processes; 0 processes in the watcher process itself.
-    trust_close     : a close after writing makes a file complete (rule 2). Set it false for
-                      a writer that closes and reopens the file between pieces; then the
-                      stability window decides (a close still ends the writer flag).
     """
 
     folder: Path
     done_dir: Path
     rejected_dir: Path
-    keep_processed: bool = False
-    stable_s: float = 0.5
-    polling: bool = False
-    poll_interval_s: float = 2.0
-    rescan_s: float = 10.0
-    workers: int = 2
-    trust_close: bool = True
+    keep_processed: bool
+    stable_s: float
+    trust_close: bool
+    polling: bool
+    poll_interval_s: float
+    rescan_s: float
+    workers: int
 
     @classmethod
     def build(cls, folder: str | Path, table: dict | None = None, *, where: str = "[watch]",
-              **overrides) -> "WatchOptions":
-        """Options from a station's ``[watch]`` table with command-line ``overrides``
-        (None = not given). Relative done/rejected folders are relative to ``folder``."""
+              **flags) -> "WatchOptions":
+        """Options from a station's ``[watch]`` table (``where`` names its file), overridden
+        by command-line values ``flags`` (same keys; None = not given)."""
         table = dict(table or {})
         check_keys(table, WATCH_KEYS, where=where, section="watch")
-        given = {k: v for k, v in overrides.items() if v is not None}
-        merged = {**{k: v for k, v in table.items() if k not in ("folder", "store")}, **given}
         root = Path(folder).expanduser().absolute()
         if not root.is_dir():
             raise ConfigError("the watched folder does not exist (or is not a folder)", where=str(folder))
-
-        def folder_option(key: str, default: str) -> Path:
-            value = merged.get(key, default)
-            if not isinstance(value, (str, Path)) or not str(value):
-                raise ConfigError("must be a folder path", where=where, key=f"watch.{key}")
-            return (root / Path(value).expanduser()).absolute()
-
-        options = cls(
-            folder=root,
-            done_dir=folder_option("done_dir", "done"),
-            rejected_dir=folder_option("rejected_dir", "rejected"),
-            keep_processed=_flag(merged, "keep_processed", False, where),
-            stable_s=_seconds(merged, "stable_s", 0.5, where),
-            polling=_flag(merged, "polling", False, where),
-            poll_interval_s=_seconds(merged, "poll_interval_s", 2.0, where),
-            rescan_s=_seconds(merged, "rescan_s", 10.0, where),
-            workers=_count(merged, "workers", os.cpu_count() or 1, where),
-            trust_close=_flag(merged, "trust_close", True, where),
-        )
+        values = {}
+        for key, default in WATCH_DEFAULTS.items():
+            if flags.get(key) is not None:
+                value, place, label = flags[key], "command line", "--" + _FLAGS[key]
+            elif key in table:
+                value, place, label = table[key], where, f"watch.{key}"
+            else:
+                value, place, label = default, "default", key
+            values[key] = _checked(key, value, root, place, label)
+        options = cls(folder=root, **values)
         options._check_folders(where)
         return options
 
@@ -153,30 +146,37 @@ class WatchOptions:
         for key, path in (("done_dir", self.done_dir), ("rejected_dir", self.rejected_dir)):
             real = os.path.realpath(path)
             if real == watched or watched.startswith(real + os.sep):
-                raise ConfigError("must not be the watched folder or one that contains it",
+                raise ConfigError(f"{path} must not be the watched folder or one that contains it",
                                   where=where, key=f"watch.{key}")
 
 
-def _flag(table: dict, key: str, default: bool, where: str) -> bool:
-    value = table.get(key, default)
-    if not isinstance(value, bool):
-        raise ConfigError(f"must be true or false, not {value!r}", where=where, key=f"watch.{key}")
-    return value
+_FLAGS = {"done_dir": "done", "rejected_dir": "rejected", "keep_processed": "keep", "stable_s": "stable",
+          "trust_close": "trust-close", "polling": "polling", "poll_interval_s": "poll-interval",
+          "rescan_s": "rescan", "workers": "workers"}
 
 
-def _seconds(table: dict, key: str, default: float, where: str) -> float:
-    value = table.get(key, default)
+def _checked(key: str, value, root: Path, where: str, label: str):
+    """One [watch] value, type- and range-checked; folders made absolute."""
+    def wrong(expected: str):
+        return ConfigError(f"must be {expected}, not {value!r}", where=where, key=label)
+
+    if key in ("done_dir", "rejected_dir"):
+        if not isinstance(value, (str, Path)) or not str(value):
+            raise wrong("a folder path")
+        return (root / Path(value).expanduser()).absolute()
+    if key == "workers":
+        if value is None:
+            return os.cpu_count() or 1
+        if isinstance(value, bool) or not isinstance(value, int) or value < 0:
+            raise wrong("a whole number >= 0")
+        return value
+    if isinstance(WATCH_DEFAULTS[key], bool):
+        if not isinstance(value, bool):
+            raise wrong("true or false")
+        return value
     if isinstance(value, bool) or not isinstance(value, (int, float)) or not value > 0:
-        raise ConfigError(f"must be a positive number of seconds, not {value!r}", where=where,
-                          key=f"watch.{key}")
+        raise wrong("a positive number of seconds")
     return float(value)
-
-
-def _count(table: dict, key: str, default: int, where: str) -> int:
-    value = table.get(key, default)
-    if isinstance(value, bool) or not isinstance(value, int) or value < 0:
-        raise ConfigError(f"must be a whole number >= 0, not {value!r}", where=where, key=f"watch.{key}")
-    return value
 
 
 def is_sweep_name(name: str) -> bool:
@@ -219,8 +219,9 @@ class CompletionTracker:
     """Files seen but not yet complete, and the rule that decides when they are.
 
     ``closes_reported`` is True under inotify (close-after-write events exist); then a
-    file written to since its last close is never complete. ``trust_close`` enables rule 2. Every method takes ``now``
-    (``time.monotonic()`` seconds) so the rule can be tested with a controlled clock.
+    file written to since its last close is never complete. ``trust_close`` enables rule 2.
+    Every method takes ``now`` (``time.monotonic()`` seconds), so the rule can be tested
+    with a controlled clock.
     """
 
     def __init__(self, stable_s: float, *, closes_reported: bool, trust_close: bool = True):
@@ -491,7 +492,7 @@ def _start_observer(options: WatchOptions, inbox: "queue.Queue", real_folder: st
               ev.FileClosedEvent, ev.FileOpenedEvent]
     observer.schedule(_make_event_handler(inbox), real_folder, recursive=True, event_filter=wanted)
     observer.start()
-    closes_reported = type(observer).__name__ == "InotifyObserver"
+    closes_reported = type(observer).__name__ == "InotifyObserver"   # close events: Linux only
     return observer, closes_reported
 
 
@@ -608,8 +609,9 @@ class FolderWatcher:
                 try:
                     observer, closes_reported = _start_observer(self.options, self._inbox, self._real_folder)
                 except OSError as error:     # e.g. the inotify watch limit
-                    raise ConfigError(f"cannot watch this folder: {error} (try --polling, or raise "
-                                      "fs.inotify.max_user_watches)", where=str(self.options.folder)) from None
+                    raise ConfigError(f"cannot watch this folder: {error} (try --polling, or "
+                                      "raise fs.inotify.max_user_watches)",
+                                      where=str(self.options.folder)) from None
             self._tracker = CompletionTracker(self.options.stable_s, closes_reported=closes_reported,
                                               trust_close=self.options.trust_close)
             self._log_start(observer)

@@ -27,8 +27,7 @@ from pipeline.elements import Element, PartModel
 from pipeline.headroom import analyse_band, summarise_lot
 from pipeline.lotjob import analyse_lot, process_lot
 from pipeline.process import Settings
-from pipeline.report import (elements_from_json, headroom_from_dict, load_lot, load_unit,
-                             lot_report_html, plotted_units, write_report)
+from pipeline.report import load_lot, load_unit, plotted_units, write_report
 from pipeline.store import ResultsStore
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -43,7 +42,8 @@ DETUNED = {"U-0004": 0.94, "U-0009": 1.055}      # resonance scale: these miss t
 # --------------------------------------------------------------------------- test lots
 
 def _samples():
-    spec = importlib.util.spec_from_file_location("make_samples", ROOT / "sample_measurements" / "make_samples.py")
+    path = ROOT / "sample_measurements" / "make_samples.py"
+    spec = importlib.util.spec_from_file_location("make_samples", path)
     module = importlib.util.module_from_spec(spec)
     sys.modules["make_samples"] = module          # dataclasses look their module up
     spec.loader.exec_module(module)
@@ -207,7 +207,7 @@ def test_key_numbers_are_those_of_the_lot_summary(lot_html, lot_store):
     assert yield_after in text
     assert f"{shared['n_pass']} of {len(NAMES)} units" in text
     assert f"{100 * summary['tolerance']['yield_fraction']:.1f} %" in text
-    for element in elements_from_json(shared["elements"]):
+    for element in (Element.from_dict(d) for d in shared["elements"]):
         assert f"{element.position} {element.kind}" in text
 
 
@@ -309,7 +309,7 @@ def test_elements_round_trip_through_json():
     elements = (Element("shunt", "capacitor", 4.7e-12, PartModel(esr_ohm=0.3, srf_hz=6e9)),
                 Element("series", "inductor", 6.8e-9, PartModel(q=35.0, q_ref_hz=1e9, srf_hz=4e9)),
                 Element("series", "capacitor", 1.8e-11))
-    assert elements_from_json(json.loads(json.dumps([e.as_dict() for e in elements]))) == elements
+    assert tuple(Element.from_dict(d) for d in json.loads(json.dumps([e.as_dict() for e in elements]))) == elements
 
 
 def test_stored_headroom_summarises_like_the_original(lot_store):
@@ -321,7 +321,7 @@ def test_stored_headroom_summarises_like_the_original(lot_store):
         z = r.z0_ohm * (1 + r.s11_dut) / (1 - r.s11_dut)
         original = analyse_band(r.freq_hz, z, BAND, r.rl_after_worst_db, SPEC_DB)
         originals.append(original)
-        rebuilt.append(headroom_from_dict(r.headroom, unit.band_hz))
+        rebuilt.append(r.headroom)
     assert summarise_lot(rebuilt) == summarise_lot(originals)         # JSON keeps every float
 
 
@@ -330,9 +330,9 @@ def test_lot_report_shows_the_headroom_spread(lot_html, lot_store):
     section = text.split('<section id="headroom">', 1)[1].split("</section>", 1)[0]
     with ResultsStore(lot_store, mode="r") as store:
         view = load_lot(store, HOSTILE_LOT)
-    stats = summarise_lot(headroom_from_dict(u.record.headroom, u.band_hz) for u in view.units)
+    stats = summarise_lot(u.record.headroom for u in view.units)
     assert f'{stats["q_estimate"]["median"]:.3g}' in section
-    assert f'{stats["headroom_db"]["median"]:.3g}' in section
+    assert f'{stats["headroom_db"]["median"]:.1f}' in section and f'{stats["rl_bound_db"]["p90"]:.1f}' in section
     assert len(Page(section).all("img")) == 1
 
 
@@ -344,6 +344,27 @@ def test_lot_without_a_summary_uses_each_units_own_network(tmp_path):
     assert "No lot summary is stored for this lot" in text
     assert "RL with shared network" not in text
     assert len(unit_rows(text)) == 3 and len(Page(text).all("img")) == 4 + 3
+
+
+def test_stale_summary_and_a_second_lot(tmp_path, capsys):
+    """Units stored after the lot job ran are shown, with the shared network applied to
+    them and a note; a second lot without a summary is reported on its own with --lot."""
+    store = build_store(tmp_path / "a", "A", ["U-0001", "U-0002", "U-0003"], mc_trials=100)
+    later = tmp_path / "later"
+    later.mkdir()
+    extra = write_lot(later, ["U-0004", "U-0020"], seed=2, detuned=DETUNED)
+    with ResultsStore(store, mode="a") as s:
+        process_lot(s, extra[:1], Settings(band_hz=BAND, spec_rl_db=SPEC_DB, lot="A"), workers=1)
+        process_lot(s, extra[1:], Settings(band_hz=BAND, spec_rl_db=SPEC_DB, lot="B"), workers=1)
+    assert main(["report", str(store), "-o", str(tmp_path / "r")]) == 2
+    assert "holds 2 lots (A, B)" in capsys.readouterr().err
+    text_a = write_report(store, tmp_path / "r", lot="A").read_text(encoding="utf-8")
+    assert "The stored lot summary covers 3 units; the store now holds 4" in text_a
+    rows = dict(unit_rows(text_a))
+    assert sorted(rows) == ["U-0001", "U-0002", "U-0003", "U-0004"] and rows["U-0004"] == "fail"
+    text_b = write_report(store, tmp_path / "r", lot="B").read_text(encoding="utf-8")
+    assert "No lot summary is stored for this lot" in text_b
+    assert [name for name, _ in unit_rows(text_b)] == ["U-0020"]
 
 
 def test_lot_of_unreadable_files_only(tmp_path):
@@ -402,6 +423,9 @@ def test_unit_figure_draws_the_shared_curve_and_the_bound():
     assert any("Bode–Fano bound  RL 18.0 dB (dashed)" in t.get_text() for t in ax.texts)
     assert fig._suptitle.get_text() == "$a$b$"          # drawn as text, not maths
     fig.canvas.draw()
+    high = match_figure(f, s11, s11 * 0.2, BAND, 50.0, (), rl_bound_db=80.0, spec_rl_db=10.0)
+    assert any("Bode–Fano bound  RL 80.0 dB (above the chart)" in t.get_text() for t in high.axes[0].texts)
+    assert not [line for line in high.axes[0].get_lines() if list(line.get_ydata()) == [80.0, 80.0]]
 
 
 def test_lot_figures_with_units_on_different_grids():

@@ -49,7 +49,9 @@ window.addEventListener("load", () => {
       ctx.drawImage(img, 0, 0);
       const px = ctx.getImageData(0, 0, canvas.width, canvas.height).data;
       let dark = 0;
-      for (let i = 0; i < px.length; i += 4) { if (px[i] < 235 || px[i + 1] < 235 || px[i + 2] < 235) dark++; }
+      for (let i = 0; i < px.length; i += 4) {
+        if (px[i] < 235 || px[i + 1] < 235 || px[i + 2] < 235) dark++;
+      }
       ink = dark / (px.length / 4);
     }
     return {complete: img.complete, width: img.naturalWidth, height: img.naturalHeight,

@@ -166,6 +166,16 @@ def test_reason_sidecar_is_written_whole(tmp_path):
     assert sorted(p.name for p in sidecar.parent.iterdir()) == [sidecar.name]
 
 
+def test_status_line_counts_and_last_result():
+    from pipeline.watch import WatchStatus
+
+    status = WatchStatus(stored=7, already_stored=2, rejected=1, waiting=3, in_hand=2,
+                         last="u9.s1p: RL 5.0 -> 15.0 dB")
+    assert status.done == 9
+    assert status.line() == ("done 9 (2 already stored) · rejected 1 · waiting 3 · in hand 2"
+                             " · last: u9.s1p: RL 5.0 -> 15.0 dB")
+
+
 # --- options -------------------------------------------------------------------------------
 
 def test_options_defaults_and_relative_folders(tmp_path):
@@ -189,6 +199,12 @@ def test_bad_watch_options_name_the_key(tmp_path, table, key):
     with pytest.raises(ConfigError) as caught:
         WatchOptions.build(tmp_path, table, where="station.toml")
     assert caught.value.key == key and "station.toml" in str(caught.value)
+
+
+def test_a_bad_command_line_value_names_the_flag(tmp_path):
+    with pytest.raises(ConfigError) as caught:
+        WatchOptions.build(tmp_path, {"stable_s": 2.0}, where="station.toml", stable_s=-1.0)
+    assert caught.value.key == "--stable" and caught.value.where == "command line"
 
 
 def test_missing_folder_is_refused(tmp_path):
@@ -460,7 +476,8 @@ def test_kept_in_place_files_are_stored_once_over_many_runs(tmp_path):
     inbox.mkdir()
     for i, content in enumerate(antenna_sweeps(3, seed=2)):
         (inbox / f"unit{i}.s1p").write_bytes(content)
-    for run, expected in ((1, "done 3 (3 stored, 0 already stored)"), (2, "done 3 (0 stored, 3 already stored)")):
+    for run, expected in ((1, "done 3 (3 stored, 0 already stored)"),
+                          (2, "done 3 (0 stored, 3 already stored)")):
         result = run_cli("watch", inbox, "--store", store_path, "--band", BAND, "--once", "--keep",
                          "--workers", 0)
         assert result.returncode == 0, result.stderr
@@ -561,7 +578,8 @@ def test_a_reader_holding_the_store_before_the_watcher_starts_only_delays_it(tmp
     assert "done 1 (1 stored" in out and files_under(inbox) == ["done/unit0.s1p"]
 
 
-def test_sigterm_finishes_the_files_in_hand_and_exits_zero(tmp_path):
+@pytest.mark.parametrize("stop_signal", [signal.SIGTERM, signal.SIGINT])
+def test_a_stop_signal_finishes_the_files_in_hand_and_exits_zero(tmp_path, stop_signal):
     inbox, store_path = tmp_path / "inbox", tmp_path / "results.h5"
     inbox.mkdir()
     code = "import sys; from pipeline.cli import main; sys.exit(main(sys.argv[1:]))"
@@ -572,7 +590,7 @@ def test_sigterm_finishes_the_files_in_hand_and_exits_zero(tmp_path):
         for i, content in enumerate(antenna_sweeps(30, seed=6)):
             (inbox / f"unit{i:02d}.s1p").write_bytes(content)
         assert wait_until(lambda: (inbox / "done").is_dir() and any((inbox / "done").iterdir()), 60)
-        proc.send_signal(signal.SIGTERM)
+        proc.send_signal(stop_signal)
         out, err = proc.communicate(timeout=30)
     finally:
         if proc.poll() is None:

@@ -76,7 +76,7 @@ def feed(inbox: Path, files: list[tuple[str, bytes, str]]) -> None:
             os.replace(part, path)
         else:
             path.write_bytes(content)
-        time.sleep(0.01)
+        time.sleep(0.02)             # ~10 s of arrivals: still arriving when the watcher dies
     for t in slow_writers:
         t.join()
 
@@ -107,6 +107,7 @@ def test_burst_with_a_kill_and_restart_loses_nothing_and_doubles_nothing(tmp_pat
     try:
         assert wait_until(lambda: sum(1 for _ in done.rglob("*.s1p")) >= KILL_AFTER_DONE, 60)
         workers = worker_pids(first.pid)
+        assert len(workers) >= 2                     # the pool (and multiprocessing's tracker)
         first.send_signal(signal.SIGKILL)
         first.wait(timeout=10)
         assert writer.is_alive(), "the burst should still be arriving when the watcher dies"

@@ -17,6 +17,7 @@ from pipeline.cli.options import (EPS_EFF, FIXTURE, LOSS_REF, PORT_DELAY, PORT_L
                                   load_station)
 from pipeline.cli.summary import print_lot_summary
 from pipeline.lotjob import analyse_lot, process_lot
+from pipeline.report import write_report
 from pipeline.store import ResultsStore
 
 SAMPLE_LOT = Path(__file__).resolve().parents[2] / "sample_measurements" / "lot-915"
@@ -99,3 +100,6 @@ def demo(
     console.print(f"[bold]matchbay demo[/]: {SAMPLE_LOT.relative_to(SAMPLE_LOT.parents[1])} "
                   f"over {DEMO_BAND}, spec 10 dB, E24 {DEMO_PARTS} parts -> {store_path}")
     run_lot([str(SAMPLE_LOT)], settings, str(store_path), workers=workers, console=console)
+    report = write_report(store_path, out, lot=settings.lot, workers=workers)
+    console.print(f"report: [bold]{report}[/] (one HTML file; open it in any browser)")
+    console.print(f"next: matchbay results list {store_path} --failing")

@@ -19,7 +19,8 @@ def report(
     dut: Optional[str] = typer.Option(None, "--dut", help="Report one unit (DUT id) instead of a lot."),
     unit_plots: int = typer.Option(DEFAULT_UNIT_PLOTS, help="Units of a lot that get a section with "
                                    "plots, lowest return loss first (every unit is in the table)."),
-    workers: Optional[int] = typer.Option(None, help="Processes drawing the unit plots (default: all cores)."),
+    workers: Optional[int] = typer.Option(None, help="Processes drawing the unit plots "
+                                          "(default: all cores)."),
 ):
     """Write DIR/<lot>.html (or DIR/<dut>.html): one file, pictures embedded, opens anywhere."""
     path = write_report(store, out, lot=lot_id, dut=dut, unit_plots=unit_plots, workers=workers)

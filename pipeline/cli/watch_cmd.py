@@ -33,9 +33,9 @@ STORE_OPEN_WAIT_S = 60.0         # how long to wait for a reader that holds the 
 @app.command("watch")
 def watch(
     folder: Optional[str] = typer.Argument(
-        None, help="Folder to watch, recursively (default: the station's [watch] folder)."),
+        None, help="Folder to watch, recursively (default: watch.folder of the station file)."),
     store: Optional[str] = typer.Option(
-        None, help="HDF5 results store, created if new (default: the station's [watch] store)."),
+        None, help="HDF5 results store, created if new (default: watch.store of the station file)."),
     band: Optional[str] = typer.Option(None, help="Band to match over, e.g. 902M:928M."),
     spec_rl: Optional[float] = typer.Option(None, help="Return loss (dB) a unit must reach over the band."),
     series: Optional[str] = typer.Option(None, help="Part series: E6, E12, E24, E48, E96, E192 or ideal."),
@@ -48,19 +48,24 @@ def watch(
     config: Optional[str] = typer.Option(
         None, "--config", "--station", help="Station file (TOML) under configs/stations/ or a path."),
     done: Optional[str] = typer.Option(
-        None, help="Folder for processed files; relative to the watched folder [done]."),
+        None, help="Folder for processed files, relative to the watched folder (default: done)."),
     rejected: Optional[str] = typer.Option(
-        None, help="Folder for bad files and their .reason.txt; relative to the watched folder [rejected]."),
+        None, help="Folder for bad files and their .reason.txt (default: rejected)."),
     keep: Optional[bool] = typer.Option(
         None, "--keep/--move", help="Leave processed files in place instead of moving them to done."),
     stable: Optional[float] = typer.Option(
-        None, help="Seconds a file's size and mtime must stay unchanged to count as complete [0.5]."),
+        None, help="Seconds a file's size and mtime must stay unchanged to count as complete (default 0.5)."),
+    trust_close: Optional[bool] = typer.Option(
+        None, "--trust-close/--no-trust-close",
+        help="A close after writing means complete (off: a writer that reopens between pieces)."),
     polling: Optional[bool] = typer.Option(
         None, "--polling/--native", help="Poll the folder (network shares) instead of native events."),
-    poll_interval: Optional[float] = typer.Option(None, help="Polling interval, seconds [2]."),
-    rescan: Optional[float] = typer.Option(None, help="Full rescan of the folder every so many seconds [10]."),
-    workers: Optional[int] = typer.Option(None, help="Worker processes; 0: in this process [all cores]."),
-    once: bool = typer.Option(False, "--once", help="Process what is in the folder, then exit (scheduled runs)."),
+    poll_interval: Optional[float] = typer.Option(None, help="Polling interval, seconds (default 2)."),
+    rescan: Optional[float] = typer.Option(
+        None, help="Full rescan of the folder every N seconds (default 10)."),
+    workers: Optional[int] = typer.Option(
+        None, help="Worker processes; 0: in this process (default: all cores)."),
+    once: bool = typer.Option(False, "--once", help="Process what is in the folder, then exit."),
 ):
     """Watch a folder: de-embed, match and store every sweep file that lands there."""
     station = load_station(config)
@@ -78,7 +83,8 @@ def watch(
                           where="--store")
     options = WatchOptions.build(
         str(folder), table, where=where, done_dir=done, rejected_dir=rejected, keep_processed=keep,
-        stable_s=stable, polling=polling, poll_interval_s=poll_interval, rescan_s=rescan, workers=workers)
+        stable_s=stable, trust_close=trust_close, polling=polling, poll_interval_s=poll_interval,
+        rescan_s=rescan, workers=workers)
     settings = build_settings(band=band, z0=z0, spec_rl=spec_rl, series=series, parts=parts,
                               fixture=fixture, port_delay=port_delay, port=port, lot=lot, station=station)
     status = run_watch(options, settings, str(store), once=once)

@@ -179,7 +179,8 @@ def children_cpu_s() -> float:
 
 def cpu_line(cpu_s: float, files: int) -> str:
     per_file_ms = cpu_s / files * 1e3
-    return f"CPU {per_file_ms:.1f} ms/file (watcher + workers) -> {2000 / per_file_ms:.0f} files/s on 2 idle cores"
+    return (f"CPU {per_file_ms:.1f} ms/file (watcher + workers) -> "
+            f"{2000 / per_file_ms:.0f} files/s on 2 idle cores")
 
 
 def bench_throughput(sweeps: list[bytes], root: Path) -> None:
@@ -215,7 +216,8 @@ def bench_once(sweeps: list[bytes], root: Path) -> None:
     summary = watcher.stop(wait_for_exit=True)
     total = time.monotonic() - watcher.started_at
     print(f"--once backlog of {len(sweeps)}: {total:.1f} s in all ({len(sweeps) / total:.1f} files/s), "
-          f"{total - startup:.1f} s after startup ({len(sweeps) / (total - startup):.1f} files/s)  [{summary}]; "
+          f"{total - startup:.1f} s after startup ({len(sweeps) / (total - startup):.1f} files/s)"
+          f"  [{summary}]; "
           f"{cpu_line(children_cpu_s() - cpu_before, len(sweeps))} (startup included)")
     print(f"load average now: {' '.join(f'{x:.1f}' for x in os.getloadavg())}")
 
