@@ -169,7 +169,7 @@ def _draw_return_loss(ax, freq_hz, s11_before, s11_after, band_hz, rl_bound_db, 
     highest = float(np.max(rl_after))
     if rl_bound_db is not None and rl_bound_db + 3 <= RL_AXIS_TOP_DB:
         highest = max(highest, rl_bound_db)           # a bound that fits is always in view
-    top = min(RL_AXIS_TOP_DB, max(25.0, 5 * np.ceil((highest + 3) / 5)))
+    top = min(RL_AXIS_TOP_DB, max(25.0, 5 * np.ceil((1.3 * highest + 3) / 5)))   # room for the box
     # The spec and the bound are labelled on the chart and in the text box, not in the
     # legend, so the legend stays short enough to sit beside the box.
     if spec_rl_db is not None:
@@ -344,7 +344,7 @@ def _draw_smith(ax, freq_hz, s11_before, s11_after, band_hz, z0, elements, spec_
     ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.01), ncol=2, frameon=False,
               fontsize=8, handlelength=1.6, columnspacing=1.2)
     ax.set_title("Smith chart  ·  impedance grid grey, admittance grid sand", fontsize=8.5,
-                 color=MUTED, pad=14)
+                 color=MUTED, pad=4)
 
 
 def _label_band_edges(ax, freq_hz: np.ndarray, gamma: np.ndarray) -> None:
