@@ -76,7 +76,7 @@ def _pick(flag, station: dict, key: str, default):
 
 def build_settings(*, band: str | None, z0: float | None = None, spec_rl: float | None = None,
                    series: str | None = None, parts: str | None = None,
-                   fixture: FixtureFlags | str | None = None, port_delay: str | None = None,
+                   fixture: FixtureFlags | None = None,
                    port: int | None = None, max_mb: float | None = None, lot: str | None = None,
                    station: dict | None = None):
     """Settings for band matching from CLI values; a missing band is a one-line error."""
@@ -84,8 +84,6 @@ def build_settings(*, band: str | None, z0: float | None = None, spec_rl: float 
     from pipeline.process import Settings
 
     station = station or {}
-    if not isinstance(fixture, FixtureFlags):      # TEMPORARY: until watch_cmd passes FixtureFlags
-        fixture = FixtureFlags(fixture, port_delay)
     defaults = load_defaults()
     band_text = _pick(band, station, "band", None)
     if not band_text:
