@@ -88,11 +88,15 @@ def read_sweep(path: str | Path, *, port: int = 1, z0: float = 50.0,
     where = str(path)
     data, mtime = _read_bytes(Path(path), where, max_bytes)
     text = _decode(data)
-    touchstone = _parse(text, where)
-    _check_parsed(touchstone, text, where)
-    network = _to_network(touchstone, text)
-    s_pp = _reflection_at_port(network, port, z0, where)
-    _check_passive(s_pp, network.f, port, text, where)
+    plain = _plain_one_port(text, Path(path).suffix, z0) if port == 1 else None
+    if plain is not None:
+        freq_hz, s_pp = plain
+    else:
+        touchstone = _parse(text, where)
+        _check_parsed(touchstone, text, where)
+        network = _to_network(touchstone, text)
+        freq_hz, s_pp = network.f.copy(), _reflection_at_port(network, port, z0, where)
+    _check_passive(s_pp, freq_hz, port, text, where)
     provenance = Provenance(
         dut_id=dut_id if dut_id is not None else Path(path).stem,
         lot=lot,
@@ -101,7 +105,86 @@ def read_sweep(path: str | Path, *, port: int = 1, z0: float = 50.0,
         acquired_at=_dt.datetime.fromtimestamp(mtime, tz=_dt.timezone.utc).isoformat(timespec="seconds"),
         port=port,
     )
-    return Sweep(freq_hz=network.f.copy(), s11=s_pp, z0_ohm=float(z0), provenance=provenance)
+    return Sweep(freq_hz=freq_hz, s11=s_pp, z0_ohm=float(z0), provenance=provenance)
+
+
+# --- the fast path for plain one-port S files --------------------------------------------
+#
+# A production lot is thousands of plain v1 .s1p files; scikit-rf's general parser costs
+# about 2-3 times a plain numpy read (library-facts section 1.1). Files of the simplest
+# shape (one option line, S parameters, three numbers per row, rising frequencies) are
+# read here directly; anything else, and anything wrong, goes through scikit-rf, which
+# stays the reference parser (tests/test_acquire.py checks the two agree).
+
+_FREQ_SCALE = {"hz": 1.0, "khz": 1e3, "mhz": 1e6, "ghz": 1e9}
+
+
+def _plain_option_line(line: str) -> tuple[float, str, float] | None:
+    """(frequency scale, format, R) of a v1 option line for S data, else None."""
+    unit, fmt, r, tokens = "ghz", "ma", 50.0, line[1:].lower().split()
+    i = 0
+    while i < len(tokens):
+        token = tokens[i]
+        if token in _FREQ_SCALE:
+            unit = token
+        elif token in _FORMATS:
+            fmt = token
+        elif token == "r" and i + 1 < len(tokens):
+            try:
+                r = float(tokens[i + 1])
+            except ValueError:
+                return None
+            i += 1
+        elif token != "s":
+            return None                       # Y/Z/H/G, or anything unusual: scikit-rf
+        i += 1
+    return (_FREQ_SCALE[unit], fmt, r) if r > 0 else None
+
+
+def _plain_one_port(text: str, suffix: str, z0: float):
+    """(freq_hz, S11 at z0) for a plain v1 one-port S file, or None to use scikit-rf."""
+    if suffix.lower() != ".s1p":
+        return None
+    option, rows = None, []
+    for line in text.splitlines():
+        line = line.split("!", 1)[0].strip()
+        if not line:
+            continue
+        if line.startswith("#"):
+            if option is not None:
+                return None                   # a second option line: scikit-rf's rules
+            option = _plain_option_line(line)
+            if option is None:
+                return None
+        elif line.startswith("[") or option is None:
+            return None                       # v2 keywords, or data before the option line
+        else:
+            rows.append(line)
+    if option is None or not rows:
+        return None
+    try:
+        data = np.array(" ".join(rows).split(), dtype=float)
+    except ValueError:
+        return None
+    if data.size != 3 * len(rows):
+        return None
+    data = data.reshape(-1, 3)
+    scale, fmt, r = option
+    freq_hz = data[:, 0] * scale
+    if not (np.all(np.isfinite(data)) and freq_hz[0] > 0 and np.all(np.diff(freq_hz) > 0)):
+        return None
+    a, b = data[:, 1], data[:, 2]
+    if fmt == "ri":
+        s = a + 1j * b
+    else:
+        magnitude = a if fmt == "ma" else 10 ** (a / 20)
+        s = magnitude * np.exp(1j * np.deg2rad(b))
+    if r != z0:                               # renormalise (real references): same Z, new z0
+        if np.any(np.abs(1 - s) < 1e-12):
+            return None                       # an ideal open: leave it to scikit-rf
+        z = r * (1 + s) / (1 - s)
+        s = (z - z0) / (z + z0)
+    return freq_hz, s
 
 
 # --- reading the bytes ---------------------------------------------------------------------

@@ -2,8 +2,11 @@
 
 The work per file (parse, de-embed, match) is a few milliseconds, close to what one
 task costs any executor, so files travel in batches (``batch_size``, default 50, about
-100-300 ms of work). Workers only compute and return records; the calling process is
-the single writer of the HDF5 store (HDF5 allows one writer).
+100-150 ms of work), and a worker processes its batch together: the units measured on
+one frequency grid share the array evaluations of the band match (measured on a 2-core
+machine: 2.6-2.9 ms per unit with the read, against 26 ms one by one). Workers only
+compute and return records; the calling process is the single writer of the HDF5 store
+(HDF5 allows one writer).
 
 Executors are anything with the ``concurrent.futures.Executor`` interface: a local
 process pool by default, or a Dask distributed cluster's ``Client.get_executor()``.
@@ -58,22 +61,40 @@ def discover(paths: Iterable[str]) -> list[str]:
 
 
 def process_batch(paths: list[str], settings) -> list[Outcome]:
-    """Worker task: process a batch of files; a bad file becomes a failed Outcome."""
-    from pipeline.acquire import sha256_file
-    from pipeline.process import process_file
+    """Worker task: process a batch of files; a bad file becomes a failed Outcome.
 
-    outcomes = []
-    for path in paths:
+    Every file is read first; the readable ones are then processed together
+    (:func:`pipeline.process.process_sweeps`: the units of one frequency grid are matched
+    in the same array evaluations).
+    """
+    from pipeline.process import process_sweeps, read_unit
+
+    outcomes: list[Outcome | None] = [None] * len(paths)
+    read, sweeps = [], []
+    for i, path in enumerate(paths):
         try:
-            sha = sha256_file(path)
-        except OSError as error:
-            outcomes.append(Outcome(path, "", reason=f"cannot read: {error.strerror or error}"))
-            continue
-        try:
-            outcomes.append(Outcome(path, sha, record=process_file(path, settings)))
+            sweeps.append(read_unit(path, settings))
+            read.append(i)
         except MatchbayError as error:
-            outcomes.append(Outcome(path, sha, reason=str(error)))
+            outcomes[i] = _unreadable(path, error)
+    for i, sweep, result in zip(read, sweeps, process_sweeps(sweeps, settings)):
+        sha = sweep.provenance.source_sha256          # the hash of the bytes that were parsed
+        if isinstance(result, MatchbayError):
+            outcomes[i] = Outcome(paths[i], sha, reason=str(result))
+        else:
+            outcomes[i] = Outcome(paths[i], sha, record=result)
     return outcomes
+
+
+def _unreadable(path: str, error: MatchbayError) -> Outcome:
+    """The failed Outcome of a file that could not be read as a sweep."""
+    from pipeline.acquire import sha256_file
+
+    try:
+        sha = sha256_file(path)
+    except OSError as os_error:
+        return Outcome(path, "", reason=f"cannot read: {os_error.strerror or os_error}")
+    return Outcome(path, sha, reason=str(error))
 
 
 def batches(items: list, size: int) -> Iterator[list]:

@@ -85,29 +85,44 @@ def part_impedance(kind: str, value, freq_hz, *, q=None, q_ref_hz=None, esr_ohm=
     ``value``, ``freq_hz`` and the model parameters broadcast against each other (numpy
     rules), so a grid of candidate values times a frequency axis is one call. A model
     parameter of None (or NaN in an array) means that effect is absent.
+
+    The models are written so that the values and parameters (the small arrays) are
+    combined first, their NaNs set to "absent" there, and each term meets the frequency
+    axis once (w = 2 pi f):
+
+    * inductor: per henry ``A = jw + k sqrt(w)`` with ``k = sqrt(w_ref) / q`` (the loss
+      ``R = L k sqrt(w)``); with the parallel ``Cp = 1/(w_srf**2 L)`` of self-resonance,
+      ``Z = L A / (1 + jw Cp L A) = L A / (1 + jw A / w_srf**2)``;
+    * capacitor: ``Z = (1/jw) (1/C) + ESR + jw Ls`` with ``ESR = esr_ohm`` or
+      ``1/(w_ref C q)`` and the series ``Ls = 1/(w_srf**2 C)`` of self-resonance.
     """
     value = np.asarray(value, dtype=float)
     w = 2 * np.pi * np.asarray(freq_hz, dtype=float)
+    jw = 1j * w
     if kind == "inductor":
-        z = 1j * w * value
+        per_henry = jw                                   # A = Z / L without self-resonance
         if q is not None:
-            w_ref = 2 * np.pi * np.asarray(q_ref_hz, dtype=float)
-            r = np.nan_to_num(w_ref * value / np.asarray(q, dtype=float) * np.sqrt(w / w_ref))
-            z = z + r
+            k = _absent_as_zero(np.sqrt(2 * np.pi * np.asarray(q_ref_hz, dtype=float)) / np.asarray(q, dtype=float))
+            per_henry = jw + k * np.sqrt(w)
+        z = value * per_henry
         if srf_hz is not None:
-            w_srf = 2 * np.pi * np.asarray(srf_hz, dtype=float)
-            y_cp = np.nan_to_num(1j * w / (w_srf ** 2 * value))      # j w Cp
-            z = z / (1 + z * y_cp)
+            inv_w_srf2 = _absent_as_zero(1 / (2 * np.pi * np.asarray(srf_hz, dtype=float)) ** 2)
+            z = z / (1 + (jw * per_henry) * inv_w_srf2)
         return z
     if kind == "capacitor":
-        z = 1 / (1j * w * value)
+        z = (1 / jw) * (1 / value)
         if esr_ohm is not None:
-            z = z + np.nan_to_num(np.asarray(esr_ohm, dtype=float))
+            z = z + _absent_as_zero(np.asarray(esr_ohm, dtype=float))
         elif q is not None:
             w_ref = 2 * np.pi * np.asarray(q_ref_hz, dtype=float)
-            z = z + np.nan_to_num(1 / (w_ref * value * np.asarray(q, dtype=float)))
+            z = z + _absent_as_zero(1 / (w_ref * value * np.asarray(q, dtype=float)))
         if srf_hz is not None:
             w_srf = 2 * np.pi * np.asarray(srf_hz, dtype=float)
-            z = z + np.nan_to_num(1j * w / (w_srf ** 2 * value))      # j w Ls
+            z = z + jw * _absent_as_zero(1 / (w_srf ** 2 * value))       # j w Ls
         return z
     raise ValueError(f"kind must be one of {KINDS}, not {kind!r}")
+
+
+def _absent_as_zero(term) -> np.ndarray:
+    """A model term of the small (value / parameter) arrays with NaN (effect absent) as 0."""
+    return np.where(np.isnan(term), 0.0, term)

@@ -98,11 +98,23 @@ def q_at(freq_hz, z_ohm, f_hz: float, *, window_frac: float = 0.5,
 
 
 def _estimate(freq_hz, z_ohm, window_frac, window_hz):
-    """(Q_Z array on the given points, smoothing window width used in Hz)."""
+    """(Q_Z array on the given points, smoothing window width used in Hz) of one load."""
     f = np.asarray(freq_hz, dtype=float)
     z = np.asarray(z_ohm, dtype=complex)
     if f.ndim != 1 or z.shape != f.shape:
         raise ValueError(f"freq_hz and z_ohm differ in shape ({f.shape} vs {z.shape})")
+    q, window_hz_used = _estimate_many(f, z[np.newaxis], window_frac, window_hz)
+    return q[0], float(window_hz_used[0])
+
+
+def _estimate_many(f: np.ndarray, z: np.ndarray, window_frac, window_hz):
+    """(Q_Z (U, N) on the points ``f`` (N,), smoothing window width used per unit in Hz (U,))
+    for U loads ``z`` (U, N) on one grid.
+
+    Every unit goes through the same steps as alone (first pass, refinements until its
+    window stops changing); the units sharing a window length are smoothed in one call,
+    and a unit coming back to a window it had is not smoothed again.
+    """
     if f.size < MIN_WINDOW:
         raise MatchError(f"{f.size} points are too few to estimate Q (need {MIN_WINDOW})")
     if np.any(np.diff(f) <= 0) or f[0] <= 0:
@@ -111,50 +123,64 @@ def _estimate(freq_hz, z_ohm, window_frac, window_hz):
         raise ValueError("the smoothing window must be positive")
     grid, z_grid = _even_grid(f, z)
     step = grid[1] - grid[0]
-    if window_hz is not None:
-        points = _window_points(window_hz / step, grid.size)
-        q = _qz_smoothed(grid, z_grid, points)
-    else:
-        points = _window_points(FIRST_PASS_SPAN_FRAC * grid.size, grid.size)
-        q = _qz_smoothed(grid, z_grid, points)
-        for _ in range(MAX_REFINEMENTS):
-            with np.errstate(divide="ignore"):
-                bandwidth_hz = grid / q                  # the load's half-power width f/Q
-            bandwidth_hz = bandwidth_hz[np.isfinite(bandwidth_hz)]
-            if bandwidth_hz.size == 0:
-                break
-            refined = _window_points(window_frac * np.median(bandwidth_hz) / step, grid.size)
-            if refined == points:
-                break
-            points = refined
-            q = _qz_smoothed(grid, z_grid, points)
+    first = window_hz / step if window_hz is not None else FIRST_PASS_SPAN_FRAC * grid.size
+    points = np.full(z.shape[0], _window_points(first, grid.size))
+    q = _qz_smoothed(grid, z_grid, int(points[0]))
+    known = {(u, int(points[0])): row.copy() for u, row in enumerate(q)}   # (unit, window): Q_Z
+    active = np.arange(z.shape[0]) if window_hz is None else np.arange(0)
+    for _ in range(MAX_REFINEMENTS):
+        refined = _refined_window(grid, q[active], window_frac, step)
+        changed = (refined > 0) & (refined != points[active])    # 0: no bandwidth known
+        active = active[changed]
+        points[active] = refined[changed]
+        if not active.size:
+            break
+        for width in np.unique(points[active]).tolist():
+            todo = [u for u in active[points[active] == width].tolist() if (u, width) not in known]
+            if todo:
+                known.update(zip(((u, width) for u in todo), _qz_smoothed(grid, z_grid[todo], width)))
+        q[active] = [known[u, int(width)] for u, width in zip(active, points[active])]
     if grid is not f:
-        q = np.interp(f, grid, q)
-    return q, float((points - 1) * step)
+        q = np.stack([np.interp(f, grid, row) for row in q])
+    return q, (points - 1) * step
+
+
+def _refined_window(grid: np.ndarray, q: np.ndarray, window_frac: float, step: float) -> np.ndarray:
+    """Per unit (rows of ``q``), the window length in points for ``window_frac`` of the
+    load's half-power width f/Q (its median over the sweep); 0 where no Q is known."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        bandwidth_hz = grid / q                          # the load's half-power width f/Q
+    out = np.zeros(q.shape[0], dtype=int)
+    for u, row in enumerate(bandwidth_hz):
+        row = row[np.isfinite(row)]
+        if row.size:
+            out[u] = _window_points(window_frac * np.median(row) / step, grid.size)
+    return out
 
 
 def _qz_smoothed(freq_hz: np.ndarray, z_ohm: np.ndarray, points: int) -> np.ndarray:
-    """Q_Z from Savitzky-Golay smoothed R, X and dR/dw, dX/dw over ``points`` samples."""
+    """Q_Z (U, N) from Savitzky-Golay smoothed R, X and dR/dw, dX/dw over ``points``
+    samples, for loads ``z_ohm`` (U, N) on the evenly spaced ``freq_hz`` (N,)."""
     w = 2 * np.pi * freq_hz
     dw = w[1] - w[0]
-
-    def smooth(y, deriv=0):
-        return savgol_filter(y, points, POLYORDER, deriv=deriv, delta=dw, mode="interp")
-
-    r, x = smooth(z_ohm.real), smooth(z_ohm.imag)
-    dr, dx = smooth(z_ohm.real, 1), smooth(z_ohm.imag, 1)
+    units = z_ohm.shape[0]
+    parts = np.concatenate([z_ohm.real, z_ohm.imag])        # R rows, then X rows
+    smooth = savgol_filter(parts, points, POLYORDER, delta=dw, mode="interp", axis=-1)
+    slope = savgol_filter(parts, points, POLYORDER, deriv=1, delta=dw, mode="interp", axis=-1)
+    r, x, dr, dx = smooth[:units], smooth[units:], slope[:units], slope[units:]
     with np.errstate(divide="ignore", invalid="ignore"):
         q = w / (2 * r) * np.hypot(dr, dx + np.abs(x) / w)
     return np.where(r > 0, q, np.nan)
 
 
 def _even_grid(f: np.ndarray, z: np.ndarray):
-    """The sweep itself when evenly spaced, else a cubic-spline resampling of it."""
+    """The sweep itself when evenly spaced, else a cubic-spline resampling of the loads
+    ``z`` (..., N) onto an even grid of the same number of points."""
     steps = np.diff(f)
     if np.ptp(steps) <= UNIFORM_RTOL * steps.mean():
         return f, z
     grid = np.linspace(f[0], f[-1], f.size)
-    return grid, CubicSpline(f, z)(grid)
+    return grid, CubicSpline(f, z, axis=-1)(grid)
 
 
 def _window_points(width_points: float, n: int) -> int:
@@ -387,19 +413,49 @@ def analyse_band(freq_hz, z_ohm, band_hz: tuple[float, float], achieved_rl_db: f
     band_hz        : (f_lo, f_hi) inside the sweep, Hz.
     achieved_rl_db : the match's worst in-band return loss, dB.
     window_frac, window_hz : the smoothing window, as in :func:`estimate_q`.
+    The one-unit case of :func:`analyse_band_many`.
     """
     f = np.asarray(freq_hz, dtype=float)
+    z = np.asarray(z_ohm, dtype=complex)
+    if f.ndim != 1 or z.shape != f.shape:
+        raise ValueError(f"freq_hz and z_ohm differ in shape ({f.shape} vs {z.shape})")
+    return analyse_band_many(f, z[np.newaxis], band_hz, [achieved_rl_db], spec_rl_db,
+                             window_frac=window_frac, window_hz=window_hz)[0]
+
+
+def analyse_band_many(freq_hz, z_units, band_hz: tuple[float, float], achieved_rl_db,
+                      spec_rl_db: float | None = None, *, window_frac: float = 0.5,
+                      window_hz: float | None = None) -> list[Headroom]:
+    """:func:`analyse_band` for U units measured on one frequency grid.
+
+    freq_hz        : (N,) the shared sweep frequencies, Hz.
+    z_units        : (U, N) each unit's (de-embedded) load impedance, ohm.
+    achieved_rl_db : (U,) each unit's worst in-band return loss after matching, dB.
+    Each unit gets its own smoothing window, as alone; the units whose windows have
+    the same length are smoothed together in one Savitzky-Golay call.
+    """
+    f = np.asarray(freq_hz, dtype=float)
+    z = np.asarray(z_units, dtype=complex)
+    achieved = np.asarray(achieved_rl_db, dtype=float)
+    if f.ndim != 1 or z.ndim != 2 or z.shape[1:] != f.shape or achieved.shape != z.shape[:1]:
+        raise ValueError(f"freq_hz (N,), z_units (U, N) and achieved_rl_db (U,) do not fit "
+                         f"({f.shape}, {z.shape}, {achieved.shape})")
     f_lo, f_hi = (float(v) for v in band_hz)
     _check_inside(f, f_lo, f_hi)
-    q, window_used_hz = _estimate(f, z_ohm, window_frac, window_hz)
+    if not z.shape[0]:
+        return []
+    q, window_used_hz = _estimate_many(f, z, window_frac, window_hz)
     center = math.sqrt(f_lo * f_hi)
-    inside = (f > f_lo) & (f < f_hi)
-    q_band = np.concatenate([np.interp([f_lo, f_hi], f, q), q[inside]])
-    q_range = (float(np.nanmin(q_band)), float(np.nanmax(q_band))) \
-        if np.any(np.isfinite(q_band)) else None
-    bound = bode_fano_bound(float(np.interp(center, f, q)), (f_lo, f_hi), spec_rl_db)
-    return headroom(achieved_rl_db, bound, spec_rl_db, q_band_range=q_range,
-                    q_window_hz=window_used_hz)
+    at = np.stack([np.interp([f_lo, f_hi, center], f, row) for row in q])      # (U, 3)
+    q_band = np.concatenate([at[:, :2], q[:, (f > f_lo) & (f < f_hi)]], axis=1)
+    q_min, q_max = np.fmin.reduce(q_band, axis=1), np.fmax.reduce(q_band, axis=1)   # NaN: none
+    out = []
+    for u in range(z.shape[0]):
+        q_range = (float(q_min[u]), float(q_max[u])) if np.isfinite(q_band[u]).any() else None
+        bound = bode_fano_bound(float(at[u, 2]), (f_lo, f_hi), spec_rl_db)
+        out.append(headroom(achieved[u], bound, spec_rl_db, q_band_range=q_range,
+                            q_window_hz=float(window_used_hz[u])))
+    return out
 
 
 def _check_inside(f: np.ndarray, f_lo: float, f_hi: float) -> None:

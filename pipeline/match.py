@@ -11,16 +11,20 @@ dB, ``RL = -20 log10|Gamma_in|``; values are SI (H, F).
   arrangement (the eight two-element :data:`pipeline.networks.TOPOLOGIES`, the four
   single parts), with the part models of a :class:`~pipeline.parts.PartLibrary`, and then
   picks the best combination of standard (E-series) values around each optimum.
-* :func:`worst_return_loss` is the vectorised scorer behind it (candidates x units x
-  frequencies in one call), reused by the lot-level shared-network search.
+* :func:`match_band_many` does the same for many units measured on one frequency grid
+  (a production lot), all searched in the same array evaluations: the per-unit answer
+  is unchanged, the per-unit cost is a small fraction.
+* :func:`worst_return_loss` is a vectorised scorer (candidates x units x frequencies in
+  one call), used by the lot-level shared-network search.
 """
 
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
+from scipy.interpolate import make_interp_spline
 from scipy.ndimage import minimum_filter
 from scipy.optimize import minimize
 
@@ -29,8 +33,7 @@ from pipeline.elements import KINDS, POSITIONS, Element, part_impedance
 from pipeline.errors import MatchError
 from pipeline.networks import (TOPOLOGIES, Topology, delivered_fraction, element_ladder,
                                gamma_in, reflection)
-from pipeline.parts import (PartLibrary, check_series, ideal_library, mantissas, nearest_standard,
-                            neighbours, standard_values)
+from pipeline.parts import PartLibrary, check_series, ideal_library, mantissas, standard_values
 from pipeline.units import format_si
 
 SINGLE_PARTS: tuple[Topology, ...] = tuple(Topology((p,), (k,)) for p in POSITIONS for k in KINDS)
@@ -50,6 +53,9 @@ _FD_STEP = 1e-7          # log-value step of the finite-difference Jacobian in _
 _POLISH_ROUNDS = 4       # bound on adding peak points to the polishing constraints
 _POLISH_MARGIN = 0.1     # peaks of |Gamma| within 10 % of the largest constrain the polish
 _MIN_GAIN_DB = 0.01      # a network must beat the bare load by this much to be listed
+_UNITS_PER_CHUNK = 64    # units searched together (bounds the memory: a few MB per array)
+_BLOCK_POINTS = 1 << 15  # candidate-frequency points scored per array pass (fits a CPU cache)
+_STEP_BY_STEP_POINTS = 800  # Nelder-Mead rows x frequencies above which a step scores only needed points
 
 
 @dataclass(frozen=True)
@@ -137,6 +143,48 @@ def predicted_gamma(elements, freq_hz, z_load, z0: float) -> np.ndarray:
                       * np.ones_like(f))
 
 
+def predicted_gamma_many(networks, freq_hz, z_units, z0: float) -> np.ndarray:
+    """:func:`predicted_gamma` of U networks in front of U loads on one grid, (U, F).
+
+    networks : U sequences of elements (each with its own model), source side first.
+    z_units  : (U, F) the loads (ohm) at ``freq_hz`` (F,).
+    The networks of one arrangement (positions, kinds, model terms present) go through
+    :func:`~pipeline.elements.part_impedance` together, their values and models as arrays:
+    the same numbers as one network at a time.
+    """
+    f = np.asarray(freq_hz, dtype=float)
+    z = np.asarray(z_units, dtype=complex)
+    model_keys = ("q", "q_ref_hz", "esr_ohm", "srf_hz")
+    groups: dict = {}
+    for u, elements in enumerate(networks):
+        key = tuple((e.position, e.kind, tuple(getattr(e.model, k) is None for k in model_keys))
+                    for e in elements)
+        groups.setdefault(key, []).append(u)
+    out = np.empty(z.shape, dtype=complex)
+    for key, units in groups.items():
+        ladder = []
+        for slot, (position, kind, absent) in enumerate(key):
+            parts = [networks[u][slot] for u in units]
+            models = {k: None if gone else np.array([[getattr(p.model, k)] for p in parts])
+                      for k, gone in zip(model_keys, absent)}
+            ladder.append((position, part_impedance(kind, np.array([[p.value] for p in parts]), f, **models)))
+        out[units] = gamma_in(ladder, z[units], z0)
+    return out
+
+
+def _figures(ladder, z_load: np.ndarray, z0: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(worst return loss dB, return loss at the centre dB, smallest delivered fraction).
+
+    ladder : [(position, Z), ...] source side first, each Z of the shape of ``z_load``
+             (or broadcasting to it); an empty ladder is the bare load.
+    z_load : (F + 1, ...) load impedance at the band points, then at the band centre.
+    The worst and the smallest are taken over the band points (axis 0, the centre left out).
+    """
+    rl = metrics.return_loss_db(gamma_in(ladder, z_load, z0) * np.ones(z_load.shape))
+    power = delivered_fraction(ladder, z_load, z0) * np.ones(z_load.shape)
+    return np.min(rl[:-1], axis=0), rl[-1], np.min(power[:-1], axis=0)
+
+
 def _evaluate(elements: tuple[Element, ...], topology: str, series: str, freq_hz, z_load,
               center: tuple[float, complex], z0: float) -> Solution:
     """A :class:`Solution` whose figures are computed from the concrete elements.
@@ -145,12 +193,10 @@ def _evaluate(elements: tuple[Element, ...], topology: str, series: str, freq_hz
     """
     f = np.append(np.asarray(freq_hz, dtype=float), center[0])
     z = np.append(np.asarray(z_load, dtype=complex), center[1])
-    ladder = element_ladder(elements, f)
-    rl = metrics.return_loss_db(gamma_in(ladder, z, z0) * np.ones(f.size))
-    power = delivered_fraction(ladder, z, z0) * np.ones(f.size)
-    return Solution(elements=elements, topology=topology, return_loss_db=float(np.min(rl[:-1])),
-                    return_loss_center_db=float(rl[-1]),
-                    delivered_fraction_min=float(np.min(power[:-1])), series=series)
+    worst, at_center, power = _figures(element_ladder(elements, f), z, z0)
+    return Solution(elements=elements, topology=topology, return_loss_db=float(worst),
+                    return_loss_center_db=float(at_center), delivered_fraction_min=float(power),
+                    series=series)
 
 
 # ---------------------------------------------------------------------------------------
@@ -260,42 +306,50 @@ def match_at(z_load: complex, freq_hz: float, z0: float = 50.0) -> list[Solution
 
 
 # ---------------------------------------------------------------------------------------
-# A band: the measured points, the search, the standard values
+# A band: the measured points
 
-def _check_sweep(freq_hz: np.ndarray, z_load: np.ndarray, z0: float, where: str) -> None:
-    if freq_hz.ndim != 1 or z_load.shape != freq_hz.shape or freq_hz.size < 2:
+def _places(where, count: int) -> list[str]:
+    """One source name per unit: ``where`` is one name for all, or one per unit."""
+    if isinstance(where, str):
+        return [where] * count
+    places = [str(w) for w in where] or [""] * count
+    if len(places) != count:
+        raise ValueError(f"where names {len(places)} sources for {count} units")
+    return places
+
+
+def _check_sweeps(freq_hz: np.ndarray, z_units: np.ndarray, z0: float, places: list[str]) -> None:
+    """The shared grid and every unit's impedances are usable; else MatchError naming the unit."""
+    first = (places[0] if places else "") or None
+    if (freq_hz.ndim != 1 or z_units.ndim != 2 or z_units.shape[1:] != freq_hz.shape
+            or freq_hz.size < 2):
         raise MatchError(f"frequency and impedance arrays must be 1-D and of equal length "
-                         f"({freq_hz.shape} vs {z_load.shape})", where=where or None)
-    if not (np.all(np.isfinite(freq_hz)) and np.all(np.isfinite(z_load))):
-        raise MatchError("NaN or infinite value in the sweep", where=where or None)
+                         f"({freq_hz.shape} vs {z_units.shape[1:]})", where=first)
+    not_finite = ~np.all(np.isfinite(z_units), axis=1)
+    if not np.all(np.isfinite(freq_hz)) or not_finite.any():
+        unit = int(np.argmax(not_finite)) if np.all(np.isfinite(freq_hz)) else 0
+        raise MatchError("NaN or infinite value in the sweep", where=places[unit] or None)
     if np.any(np.diff(freq_hz) <= 0):
-        raise MatchError("frequencies are not strictly rising", where=where or None)
+        raise MatchError("frequencies are not strictly rising", where=first)
     if not (math.isfinite(z0) and z0 > 0):
-        raise MatchError(f"reference impedance {z0!r} ohm must be positive", where=where or None)
+        raise MatchError(f"reference impedance {z0!r} ohm must be positive", where=first)
 
 
 def _interpolate_z(freq_hz, z_load, at, z0: float) -> np.ndarray:
     """Impedance at frequencies ``at``, interpolated linearly in the real and imaginary
     parts of the reflection coefficient (bounded and smooth on the Smith chart, unlike Z,
-    which swings wildly near a parallel resonance)."""
-    g = reflection(z_load, z0)
-    g_at = np.interp(at, freq_hz, g.real) + 1j * np.interp(at, freq_hz, g.imag)
+    which swings wildly near a parallel resonance). ``z_load`` is (..., F)."""
+    g_at = make_interp_spline(freq_hz, reflection(z_load, z0), k=1, axis=-1)(at)
     return z0 * (1 + g_at) / (1 - g_at)
 
 
-def band_points(freq_hz, z_load, band_hz, z0: float = 50.0, where: str = ""):
-    """The frequencies (Hz) and load impedances (ohm) a band match is scored on.
-
-    The measured points inside ``band_hz = (lo, hi)`` plus both band edges, interpolated
-    (see :func:`_interpolate_z`) when they fall between points, so an edge counts. The
-    band must lie inside the sweep and hold at least 3 measured points, and the load
-    must be passive (R > 0) there; otherwise :class:`MatchError` naming ``where``.
-    """
+def _band_points_many(freq_hz, z_units, band_hz, z0: float, places: list[str]):
+    """:func:`band_points` for U units on one grid: (F_b,) frequencies, (U, F_b) impedances."""
     f = np.asarray(freq_hz, dtype=float)
-    z = np.asarray(z_load, dtype=complex)
-    _check_sweep(f, z, z0, where)
+    z = np.asarray(z_units, dtype=complex)
+    _check_sweeps(f, z, z0, places)
     lo, hi = (float(b) for b in band_hz)
-    place = where or None
+    place = places[0] or None
     band_text = f"band {format_si(lo, 'Hz')}:{format_si(hi, 'Hz')}"
     if not lo < hi:
         raise MatchError(f"{band_text}: the first frequency must be below the second", where=place)
@@ -309,114 +363,271 @@ def band_points(freq_hz, z_load, band_hz, z0: float = 50.0, where: str = ""):
                          "at least 3 are needed", where=place)
     f_b = np.unique(np.concatenate(([lo], f[inside], [hi])))
     z_b = _interpolate_z(f, z, f_b, z0)
-    z_b[np.isin(f_b, f[inside])] = z[inside]          # measured points exactly as measured
-    if np.any(z_b.real <= 0):
+    z_b[:, np.isin(f_b, f[inside])] = z[:, inside]          # measured points exactly as measured
+    not_passive = np.count_nonzero(z_b.real <= 0, axis=1)
+    if not_passive.any():
+        unit = int(np.argmax(not_passive > 0))
         raise MatchError(f"{band_text}: the load resistance is not positive at "
-                         f"{np.count_nonzero(z_b.real <= 0)} points (not a passive load)", where=place)
+                         f"{not_passive[unit]} points (not a passive load)", where=places[unit] or None)
     return f_b, z_b
 
 
+def band_points(freq_hz, z_load, band_hz, z0: float = 50.0, where: str = ""):
+    """The frequencies (Hz) and load impedances (ohm) a band match is scored on.
+
+    The measured points inside ``band_hz = (lo, hi)`` plus both band edges, interpolated
+    (see :func:`_interpolate_z`) when they fall between points, so an edge counts. The
+    band must lie inside the sweep and hold at least 3 measured points, and the load
+    must be passive (R > 0) there; otherwise :class:`MatchError` naming ``where``.
+    """
+    f_b, z_b = _band_points_many(freq_hz, np.asarray(z_load, dtype=complex)[np.newaxis], band_hz,
+                                 z0, [where])
+    return f_b, z_b[0]
+
+
 # ---------------------------------------------------------------------------------------
-# The band search. A "row" is one arrangement started from one seed; all rows with the
-# same number of parts are scored together in one numpy evaluation (rows x candidates x
-# frequencies), so a whole search is a few dozen array evaluations, not thousands of
-# scalar ones (per-call overhead, not arithmetic, is what a scalar optimiser pays here).
+# The band search, for U units on one frequency grid at once. A "row" is one arrangement
+# of one unit (started from one seed); all rows with the same number of parts are scored
+# together in one numpy evaluation of shape (frequencies, rows, candidates...), so a
+# whole search is a few dozen array evaluations, not thousands of scalar ones (per-call
+# overhead, not arithmetic, is what a scalar optimiser pays here). Frequency comes first
+# so that the worst case over the band is an element-wise maximum of contiguous slices
+# (measured: numpy reduces a short trailing axis 10-25 times slower).
 
 @dataclass(frozen=True, eq=False)
 class _Band:
-    """What a band search scores against: band points, reference, part library."""
+    """What a band search scores against: band points, each unit's load, the library."""
 
     freq_hz: np.ndarray          # (F,) band points, Hz
-    z_load: np.ndarray           # (F,) load impedance there, ohm
+    z_load: np.ndarray           # (F, U) load impedance of each unit there, ohm
     z0: float
     parts: PartLibrary
-    center: tuple[float, complex]    # (Hz, ohm) at the band centre
+    center_hz: float             # band centre, Hz
+    center_z: np.ndarray         # (U,) each unit's load impedance at the centre, ohm
 
     def subset(self, idx: np.ndarray) -> _Band:
-        return _Band(self.freq_hz[idx], self.z_load[idx], self.z0, self.parts, self.center)
+        """The same units on some of the band points."""
+        return replace(self, freq_hz=self.freq_hz[idx], z_load=self.z_load[idx])
+
+    def unit(self, u: int) -> _Band:
+        """Unit ``u`` alone (it becomes unit 0)."""
+        return replace(self, z_load=self.z_load[:, [u]], center_z=self.center_z[[u]])
+
+
+@dataclass(frozen=True, eq=False)
+class _Family:
+    """Arrangements with the same number n of parts, searched together.
+
+    Per arrangement a: ``inductor`` (A, n) marks its inductor slots and ``lo``/``hi``
+    (A, n) are the log-value bounds from the library ranges. The arrangements of one
+    position order are adjacent: ``orders`` lists the orders, ``order_starts`` the
+    first arrangement of each (and A). ``index`` finds an arrangement by its name.
+    """
+
+    layouts: tuple[Topology, ...]
+    inductor: np.ndarray
+    lo: np.ndarray
+    hi: np.ndarray
+    orders: tuple
+    order_starts: np.ndarray
+    index: dict
+
+    @classmethod
+    def of(cls, layouts, parts: PartLibrary) -> _Family:
+        layouts = tuple(layouts)
+        orders = tuple(dict.fromkeys(lay.positions for lay in layouts))
+        order_of = [orders.index(lay.positions) for lay in layouts]
+        if order_of != sorted(order_of):
+            raise ValueError("arrangements of one position order must be adjacent")
+        bounds = np.log([[parts.ranges[kind] for kind in lay.kinds] for lay in layouts])
+        return cls(layouts, np.array([[k == "inductor" for k in lay.kinds] for lay in layouts]),
+                   bounds[..., 0], bounds[..., 1], orders,
+                   np.searchsorted(order_of, np.arange(len(orders) + 1)),
+                   {lay.name: a for a, lay in enumerate(layouts)})
+
+    @property
+    def parts_per_layout(self) -> int:
+        return self.inductor.shape[1]
+
+    def rows(self, layout, unit) -> _Rows:
+        """Rows of arrangements ``layout`` (R,), sorted, for units ``unit`` (R,)."""
+        layout, unit = np.asarray(layout, dtype=int), np.asarray(unit, dtype=int)
+        bounds = np.searchsorted(layout, self.order_starts).tolist()
+        order_rows = {order: slice(start, stop) for order, start, stop
+                      in zip(self.orders, bounds[:-1], bounds[1:]) if stop > start}
+        return _Rows(self, layout, unit, order_rows)
+
+    def every_row(self, units: int) -> _Rows:
+        """Every arrangement of every unit, arrangement-major: row ``a * units + u``."""
+        count = len(self.layouts)
+        return self.rows(np.repeat(np.arange(count), units), np.tile(np.arange(units), count))
 
 
 @dataclass(frozen=True, eq=False)
 class _Rows:
-    """Arrangements searched together (all with n parts): row a is ``layouts[a]``.
+    """Rows searched together: row r is arrangement ``family.layouts[layout[r]]`` of unit
+    ``unit[r]``. Rows are sorted by arrangement, so each position order is one slice
+    (``order_rows``); ``inductor``, ``lo``, ``hi`` (R, n) are the rows' arrangement data."""
 
-    Holds what the scorer needs: row masks per (part slot, kind), the slice of rows of
-    each position order, and the log-value bounds (A, n) from the library ranges.
-    """
-
-    layouts: tuple[Topology, ...]
-    kind_rows: dict
+    family: _Family
+    layout: np.ndarray
+    unit: np.ndarray
     order_rows: dict
-    lo: np.ndarray
-    hi: np.ndarray
 
-    @classmethod
-    def of(cls, layouts, parts: PartLibrary) -> _Rows:
-        """Rows for ``layouts``; rows of one position order must be adjacent (a slice)."""
-        layouts = tuple(layouts)
-        n = len(layouts[0].positions)
-        kind_rows = {(s, kind): np.array([lay.kinds[s] == kind for lay in layouts])
-                     for s in range(n) for kind in KINDS}
-        order_rows = {}
-        for order in dict.fromkeys(lay.positions for lay in layouts):
-            where = [a for a, lay in enumerate(layouts) if lay.positions == order]
-            if where != list(range(where[0], where[-1] + 1)):
-                raise ValueError("rows of one position order must be adjacent")
-            order_rows[order] = slice(where[0], where[-1] + 1)
-        bounds = np.log([[parts.ranges[kind] for kind in lay.kinds] for lay in layouts])
-        return cls(layouts, kind_rows, order_rows, bounds[..., 0], bounds[..., 1])
+    @property
+    def inductor(self) -> np.ndarray:
+        return self.family.inductor[self.layout]
+
+    @property
+    def lo(self) -> np.ndarray:
+        return self.family.lo[self.layout]
+
+    @property
+    def hi(self) -> np.ndarray:
+        return self.family.hi[self.layout]
+
+    def take(self, idx: np.ndarray) -> _Rows:
+        """Some of the rows (``idx`` rising, so they stay sorted by arrangement)."""
+        return self.family.rows(self.layout[idx], self.unit[idx])
 
 
-def _rows_impedances(rows: _Rows, values, band: _Band) -> list[np.ndarray]:
-    """Impedances (ohm) of every part of every row: one array (A, ..., F) per part slot.
+def _rows_impedances(rows: _Rows, values, freq_hz: np.ndarray, parts: PartLibrary) -> list[np.ndarray]:
+    """Impedances (ohm) of every part of every row: one array (F, R, ...) per part slot.
 
-    values : one array per part slot (source side first), each of shape (A, ...). All
+    values : one array per part slot (source side first), each of shape (R, ...). All
              parts of one kind go through one :func:`part_impedance` call.
     """
-    values = [np.asarray(v, dtype=float) for v in values]
-    f = band.freq_hz
-    out = [np.empty(v.shape + f.shape, dtype=complex) for v in values]
-    for kind in KINDS:
-        picks = [rows.kind_rows[s, kind] for s in range(len(values))]
-        chunks = [v[pick] for v, pick in zip(values, picks)]
-        flat = np.concatenate([c.ravel() for c in chunks])[:, np.newaxis]
-        if not flat.size:
-            continue
-        z = part_impedance(kind, flat, f, **band.parts.model_arrays(kind, flat))
-        start = 0
-        for o, pick, chunk in zip(out, picks, chunks):
-            o[pick] = z[start:start + chunk.size].reshape(chunk.shape + f.shape)
-            start += chunk.size
-    return out
+    values = np.stack(np.broadcast_arrays(*values))                  # (n, R, ...)
+    out = np.empty(freq_hz.shape + values.shape, dtype=complex)
+    inductor = rows.inductor.T.reshape(rows.inductor.T.shape + (1,) * (values.ndim - 2))
+    for kind, is_kind in (("inductor", inductor), ("capacitor", ~inductor)):
+        pick = np.broadcast_to(is_kind, values.shape)
+        flat = values[pick]
+        if flat.size:
+            out[:, pick] = part_impedance(kind, flat, freq_hz[:, np.newaxis], **parts.model_arrays(kind, flat))
+    return list(out.transpose(1, 0, *range(2, out.ndim)))
 
 
-def _rows_gamma(rows: _Rows, values, band: _Band) -> np.ndarray:
-    """|Gamma_in| of candidate ``values`` (one (A, ...) array per part): shape (A, ..., F)."""
-    z_parts = _rows_impedances(rows, values, band)
-    mag = np.empty(np.broadcast_shapes(*(z.shape for z in z_parts), band.z_load.shape))
+@dataclass(frozen=True, eq=False)
+class _Table:
+    """Fixed part values of each kind and their impedances at some band points.
+
+    values (V,) holds the inductor values then the capacitor values, each sorted; z (F, V)
+    their impedances (ohm); ``first[kind]`` and ``count[kind]`` locate each kind. Candidates
+    taken from a table (the coarse grid, the standard values) are column numbers of it, so
+    a value shared by many rows and units has its impedance computed once.
+    """
+
+    values: np.ndarray
+    z: np.ndarray
+    first: dict
+    count: dict
+
+    @classmethod
+    def of(cls, values_by_kind: dict, freq_hz: np.ndarray, parts: PartLibrary) -> _Table:
+        values = np.concatenate([values_by_kind[k] for k in KINDS])
+        z = np.concatenate([part_impedance(k, values_by_kind[k], freq_hz[:, np.newaxis],
+                                           **parts.model_arrays(k, values_by_kind[k])) for k in KINDS], axis=1)
+        sizes = [len(values_by_kind[k]) for k in KINDS]
+        return cls(values, z, dict(zip(KINDS, np.cumsum([0] + sizes[:-1]).tolist())), dict(zip(KINDS, sizes)))
+
+    def subset(self, idx: np.ndarray) -> _Table:
+        """The same values at some of the band points."""
+        return replace(self, z=self.z[idx])
+
+    def ranking(self) -> _Table:
+        """The same table in single precision, for ranking many candidates (see
+        :func:`_reflection`)."""
+        return replace(self, z=self.z.astype(np.complex64))
+
+    def of_kind(self, inductor: np.ndarray, name: str) -> np.ndarray:
+        """Per row, ``first`` or ``count`` (``name``) of the kind its slot holds."""
+        table = getattr(self, name)
+        return np.where(inductor, table["inductor"], table["capacitor"])
+
+
+def _reflection(rows: _Rows, z_parts: list[np.ndarray], band: _Band, worst: bool = True) -> np.ndarray:
+    """|Gamma_in| of every row's candidates: its largest over the band points, (R, ...),
+    or (``worst=False``) at each band point, (F, R, ...).
+
+    z_parts : per part slot (source side first), impedances (F, R, ...) broadcasting
+              together, e.g. (F, R, P, 1) and (F, R, 1, P) for a P x P grid per row.
+    Computed in the precision of ``z_parts``: double, or single for the tables that only
+    rank many candidates (the coarse grid, the first scoring of the standard values,
+    :meth:`_Table.ranking`): a relative error near 1e-7, far below any difference that
+    decides a choice, at half the memory traffic. Every figure reported, and every
+    comparison that picks a result, is made in double precision.
+    The rows go through in blocks of about ``_BLOCK_POINTS`` points, small enough for
+    the temporaries to stay in the CPU cache (measured: twice as fast as whole arrays of
+    a few MB), each copied to contiguous memory first (numpy broadcasts strided inputs
+    2-3 times slower).
+    """
+    shape = np.broadcast_shapes(*(z.shape for z in z_parts))
+    precision = z_parts[0].dtype
+    z_load = band.z_load[:, rows.unit].astype(precision, copy=False)
+    z_load = z_load.reshape(shape[:2] + (1,) * (len(shape) - 2))
+    out = np.empty(shape[1:] if worst else shape, dtype=z_load.real.dtype)
+    step = max(1, _BLOCK_POINTS * shape[1] // math.prod(shape))        # rows per block
     for order, pick in rows.order_rows.items():
-        ladder = list(zip(order, (z[pick] for z in z_parts)))
-        mag[pick] = np.abs(gamma_in(ladder, band.z_load, band.z0))
-    return mag
+        for start in range(pick.start, pick.stop, step):
+            block = slice(start, min(start + step, pick.stop))
+            mag2 = _ladder_mag2(order, [np.ascontiguousarray(z[:, block]) for z in z_parts],
+                                np.ascontiguousarray(z_load[:, block]), band.z0)
+            if worst:
+                out[block] = np.max(mag2, axis=0)
+            else:
+                out[:, block] = mag2
+    return np.sqrt(out, out=out)
+
+
+def _ladder_mag2(order: tuple[str, ...], z_parts: list[np.ndarray], z_load: np.ndarray,
+                 z0: float) -> np.ndarray:
+    """|Gamma_in|**2 of a ladder with positions ``order`` (source side first).
+
+    The parts are combined from the load toward the source, so the load-side ones, which
+    broadcast over fewer candidate axes, meet the load while the arrays are small. The
+    source-side part is added last, as an impedance (series) or an admittance (shunt):
+    with S that sum and s0 = z0 (or 1/z0), |Gamma|**2 = |S - s0|**2 / |S + s0|**2, formed
+    from real arrays. Same value as :func:`pipeline.networks.gamma_in` (rounding aside).
+    """
+    z = z_load
+    for position, z_part in zip(order[:0:-1], z_parts[:0:-1]):
+        z = z + z_part if position == "series" else z * z_part / (z + z_part)
+    if order[0] == "series":
+        near, part, ref = z, z_parts[0], z0
+    else:
+        near, part, ref = 1 / z, 1 / z_parts[0], 1 / z0
+    real = near.real + part.real
+    imag2 = near.imag + part.imag
+    np.square(imag2, out=imag2)
+    num = real - ref
+    np.square(num, out=num)
+    num += imag2
+    real += ref
+    np.square(real, out=real)
+    real += imag2
+    num /= real
+    return num
 
 
 def _rows_cost(rows: _Rows, points: np.ndarray, band: _Band) -> np.ndarray:
-    """Worst |Gamma| over the band at log-value ``points`` (A, K, n); shape (A, K)."""
+    """Worst |Gamma| over the band at log-value ``points`` (R, K, n); shape (R, K)."""
     values = [np.exp(points[..., s]) for s in range(points.shape[-1])]
-    return np.max(_rows_gamma(rows, values, band), axis=-1)
+    return _reflection(rows, _rows_impedances(rows, values, band.freq_hz, band.parts), band)
 
 
-def _grid_worst(rows: _Rows, axes: list[np.ndarray], band: _Band) -> np.ndarray:
-    """Worst |Gamma| (A, P**n) of every combination of the candidates ``axes[s]`` (A, P)
-    of each part slot s, row by row (combinations in C order)."""
-    n, count = len(axes), len(rows.layouts)
-    grid = [axes[s].reshape((count,) + tuple(axes[s].shape[1] if t == s else 1 for t in range(n)))
-            for s in range(n)]
-    return np.max(_rows_gamma(rows, grid, band), axis=-1).reshape(count, -1)
+def _grid_worst(rows: _Rows, axes: list[np.ndarray], table: _Table, band: _Band) -> np.ndarray:
+    """Worst |Gamma| (R, P**n) of every combination of the candidates ``axes[s]`` (R, P),
+    columns of ``table`` (at the points of ``band``), of each part slot s, row by row
+    (combinations in C order)."""
+    n, count = len(axes), rows.layout.size
+    z_parts = [table.z[:, axes[s]].reshape((table.z.shape[0], count) + tuple(
+        axes[s].shape[1] if t == s else 1 for t in range(n))) for s in range(n)]
+    return _reflection(rows, z_parts, band).reshape(count, -1)
 
 
 def _grid_values(axes: list[np.ndarray], combos: np.ndarray) -> np.ndarray:
-    """Part values (A, K, n) of the grid combinations ``combos`` (A, K) (see _grid_worst)."""
+    """Candidates (R, K, n) of the grid combinations ``combos`` (R, K) (see _grid_worst)."""
     picks = np.unravel_index(combos, tuple(axis.shape[1] for axis in axes))
     return np.stack([np.take_along_axis(axis, pick, axis=1) for axis, pick in zip(axes, picks)], axis=-1)
 
@@ -426,112 +637,222 @@ def _spread(n_points: int, at_most: int) -> np.ndarray:
     return np.unique(np.linspace(0, n_points - 1, min(n_points, at_most)).round().astype(int))
 
 
-def _coarse_grid(rows: _Rows, band: _Band, seeds: int) -> np.ndarray:
-    """Log-values (A, seeds, n): per row, the best local minima of a log grid over the
-    ranges (the best point repeated where there are fewer), best first."""
-    count = math.ceil(np.max(rows.hi - rows.lo) / math.log(10) * _GRID_PER_DECADE) + 1
-    n = rows.lo.shape[1]
-    axes = [np.geomspace(np.exp(rows.lo[:, s]), np.exp(rows.hi[:, s]), count, axis=1) for s in range(n)]
-    worst = _grid_worst(rows, axes, band.subset(_spread(band.freq_hz.size, _GRID_MAX_FREQS)))
-    cube = worst.reshape((-1,) + (count,) * n)
-    is_min = cube == minimum_filter(cube, size=(1,) + (3,) * n, mode="nearest")
-    ranked = np.argsort(np.where(is_min.reshape(worst.shape), worst, np.inf), axis=1, kind="stable")
-    found = np.minimum(np.count_nonzero(is_min.reshape(worst.shape), axis=1), seeds)    # >= 1
-    picks = ranked[:, :seeds]
-    picks = np.where(np.arange(seeds) < found[:, None], picks, picks[:, :1])
-    return np.log(_grid_values(axes, picks))
+def _smallest(values: np.ndarray, k: int) -> np.ndarray:
+    """Column indices (R, k) of the k smallest of each row of ``values``, smallest first
+    (the first column on ties, as a stable sort)."""
+    if k == 1:
+        return np.argmin(values, axis=1)[:, None]
+    return np.argsort(values, axis=1, kind="stable")[:, :k]
+
+
+def _grid_table(families: list[_Family], band: _Band) -> _Table:
+    """The coarse log grid over each kind's library range, at ``_GRID_MAX_FREQS`` band points."""
+    decades = max(np.max(fam.hi - fam.lo) for fam in families) / math.log(10)
+    count = math.ceil(decades * _GRID_PER_DECADE) + 1
+    values = {k: np.geomspace(*band.parts.ranges[k], count) for k in KINDS}
+    return _Table.of(values, band.freq_hz, band.parts).ranking()
+
+
+def _coarse_grid(rows: _Rows, grid: _Table, band: _Band, seeds: int) -> np.ndarray:
+    """Log-values (R, seeds, n): per row, the best local minima of the log grid ``grid``
+    (at the points of ``band``), the best point repeated where there are fewer, best first."""
+    n = rows.inductor.shape[1]
+    count = grid.count["inductor"]
+    axes = [grid.of_kind(rows.inductor[:, s], "first")[:, None] + np.arange(count) for s in range(n)]
+    worst = _grid_worst(rows, axes, grid, band)
+    if seeds == 1:                          # the best local minimum is the best point
+        picks = _smallest(worst, 1)
+    else:
+        cube = worst.reshape((-1,) + (count,) * n)
+        is_min = (cube == minimum_filter(cube, size=(1,) + (3,) * n, mode="nearest")).reshape(worst.shape)
+        picks = _smallest(np.where(is_min, worst, np.inf), seeds)
+        found = np.minimum(np.count_nonzero(is_min, axis=1), seeds)    # >= 1
+        picks = np.where(np.arange(seeds) < found[:, None], picks, picks[:, :1])
+    return np.log(grid.values[_grid_values(axes, picks)])
 
 
 def _nelder_mead(rows: _Rows, x0, step, precision, band: _Band) -> np.ndarray:
-    """Nelder-Mead on every row at once, minimising its worst |Gamma| from log-values x0 (A, n).
+    """Nelder-Mead on every row at once, minimising its worst |Gamma| from log-values x0 (R, n).
 
     The textbook method with scipy's coefficients (reflect 1, expand 2, contract 0.5,
     shrink 0.5) and its convergence test (simplex and values within ``precision``),
-    run in lockstep: each iteration scores every row's four trial points and its shrink
-    points in one evaluation, then applies each row's rule. Candidates are clipped to
-    the library ranges. Nelder-Mead only compares values and its simplex stretches
-    along the ridges that a max over frequency forms, where a fixed-stencil search
-    stalls (measured: 0.03 dB short on a two-edge ridge). scipy's own Nelder-Mead, one
-    row at a time from the same seeds to the same precision, finds the same optima but
-    makes one scalar call per candidate, each paying numpy's per-call overhead: the
-    whole band match of tests/benchmarks/bench_match.py took about 1.5 times as long
-    (79 ms against 48 ms with E24 values, 54 ms against 37 ms with exact values, on a
-    shared 2-core machine).
+    run in lockstep (see :func:`_nelder_mead_step`). Each row stops on that test, as
+    it would searched alone, so no result depends on the rows or units beside it.
+    Candidates are clipped to the library ranges. Nelder-Mead only compares values
+    and its simplex stretches along the ridges that a max over frequency forms, where a
+    fixed-stencil search stalls (measured: 0.03 dB short on a two-edge ridge). scipy's
+    own Nelder-Mead, one row at a time from the same seeds to the same precision, finds
+    the same optima but makes one scalar call per candidate, each paying numpy's
+    per-call overhead: the whole band match of tests/benchmarks/bench_match.py took
+    about 1.5 times as long (79 ms against 48 ms with E24 values, 54 ms against 37 ms
+    with exact values, on a shared 2-core machine).
     """
-    lo, hi = rows.lo[:, None, :], rows.hi[:, None, :]
-    index, n = np.arange(x0.shape[0])[:, None], x0.shape[1]
+    n = x0.shape[1]
     sign = np.where(x0 + step > rows.hi, -1.0, 1.0)[:, None, :]        # stay inside at a bound
-    simplex = np.clip(x0[:, None, :] + step * np.vstack([np.zeros(n), np.eye(n)]) * sign, lo, hi)
+    simplex = np.clip(x0[:, None, :] + step * np.vstack([np.zeros(n), np.eye(n)]) * sign,
+                      rows.lo[:, None, :], rows.hi[:, None, :])
     values = _rows_cost(rows, simplex, band)
+    active = np.arange(rows.layout.size)
     for _ in range(_MAX_SEARCH_STEPS):
-        order = np.argsort(values, axis=1, kind="stable")
-        simplex, values = simplex[index, order], values[index, order]
-        if (np.max(np.abs(simplex[:, 1:] - simplex[:, :1])) <= precision.log_value
-                and np.max(values[:, -1] - values[:, 0]) <= precision.gamma):
+        simplex[active], values[active] = _sort_vertices(simplex[active], values[active])
+        active = _not_converged(active, simplex, values, precision)
+        if not active.size:
             break
-        centroid = simplex[:, :-1].mean(axis=1)
-        toward = centroid - simplex[:, -1]
-        trials = centroid[:, None, :] + np.array([1.0, 2.0, 0.5, -0.5])[:, None] * toward[:, None, :]
-        shrunk = simplex[:, :1] + 0.5 * (simplex[:, 1:] - simplex[:, :1])
-        cand = np.clip(np.concatenate([trials, shrunk], axis=1), lo, hi)
-        simplex, values = _nelder_mead_rule(simplex, values, cand, _rows_cost(rows, cand, band))
-    return simplex[index[:, 0], np.argmin(values, axis=1)]
+        simplex[active], values[active] = _nelder_mead_step(rows, active, simplex[active],
+                                                            values[active], band)
+    return simplex[np.arange(rows.layout.size), np.argmin(values, axis=1)]
 
 
-def _nelder_mead_rule(simplex, values, cand, cost):
-    """One Nelder-Mead decision per row: replace the worst vertex, or shrink.
+def _sort_vertices(simplex: np.ndarray, values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Each row's simplex (R, n + 1, n) and values (R, n + 1), best vertex first (stable)."""
+    rows, vertices = values.shape
+    pick = (np.argsort(values, axis=1, kind="stable") + vertices * np.arange(rows)[:, None]).ravel()
+    return simplex.reshape(rows * vertices, -1)[pick].reshape(simplex.shape), values.ravel()[pick].reshape(values.shape)
 
-    cand/cost hold, per row, the reflected, expanded, outside- and inside-contracted
-    points, then the shrink points.
+
+def _not_converged(active: np.ndarray, simplex, values, precision) -> np.ndarray:
+    """The ``active`` rows outside the convergence test (simplex or values too spread)."""
+    s, v = simplex[active], values[active]
+    spread = np.ascontiguousarray(np.abs(s[:, 1:] - s[:, :1]).reshape(active.size, -1).T)
+    open_row = (spread.max(axis=0) > precision.log_value) | (v[:, -1] - v[:, 0] > precision.gamma)
+    return active[open_row]
+
+
+def _nelder_mead_step(rows: _Rows, active: np.ndarray, simplex: np.ndarray, values: np.ndarray,
+                      band: _Band) -> tuple[np.ndarray, np.ndarray]:
+    """One Nelder-Mead iteration of the rows ``active``, whose sorted simplices (A, n + 1, n)
+    and values (A, n + 1) are given (and updated in place): the worst vertex is replaced
+    by the reflected, expanded or contracted point, or the simplex shrinks toward its best
+    vertex.
+
+    Each row's rule needs its reflected point, then at most one more (the expanded, or
+    the outside or inside contraction, chosen by the reflected value), then the shrink
+    points if that contraction failed. Many rows are scored in up to three evaluations
+    holding only the points some row needs; a few rows (fewer than
+    ``_STEP_BY_STEP_POINTS`` row-frequency points) in one evaluation of every point any
+    rule could need, since then the cost of an evaluation is mostly its fixed overhead.
+    The decisions are the same either way.
     """
-    f_best, f_next, f_worst = values[:, 0], values[:, -2], values[:, -1]
-    fr, fe, fo, fi = cost[:, 0], cost[:, 1], cost[:, 2], cost[:, 3]
-    expand = (fr < f_best) & (fe < fr)
-    reflect = ((fr < f_best) & ~(fe < fr)) | ((fr >= f_best) & (fr < f_next))
-    outside = (fr >= f_next) & (fr < f_worst) & (fo <= fr)
-    inside = (fr >= f_worst) & (fi < f_worst)
-    pick = np.select([expand, reflect, outside, inside], [1, 0, 2, 3], default=-1)
-    simplex, values = simplex.copy(), values.copy()
-    keep = np.flatnonzero(pick >= 0)
-    simplex[keep, -1] = cand[keep, pick[keep]]
-    values[keep, -1] = cost[keep, pick[keep]]
-    shrink = pick < 0
-    simplex[shrink, 1:] = cand[shrink, 4:]
-    values[shrink, 1:] = cost[shrink, 4:]
+    mine = rows.take(active)
+    lo, hi = mine.lo[:, None, :], mine.hi[:, None, :]
+    f_best, f_next, f_worst = values[:, 0].copy(), values[:, -2].copy(), values[:, -1].copy()
+    centroid = np.einsum("avk->ak", simplex[:, :-1]) / (simplex.shape[1] - 1)   # of all but the worst
+    toward = centroid - simplex[:, -1]
+
+    def score(which, points):               # clipped points (k, m, n) and their worst |Gamma|
+        points = np.clip(points, lo[which], hi[which])
+        return points, _rows_cost(mine.take(which), points, band)
+
+    def shrunk(which):                      # (k, n, n) the vertices halfway to the best one
+        s = simplex[which]
+        return s[:, :1] + 0.5 * (s[:, 1:] - s[:, :1])
+
+    everyone = np.arange(active.size)
+    if active.size * band.freq_hz.size < _STEP_BY_STEP_POINTS:
+        coefs = np.array([1.0, 2.0, 0.5, -0.5])         # reflect, expand, contract out / in
+        points, cost = score(everyone, np.concatenate(
+            [centroid[:, None, :] + coefs[:, None] * toward[:, None, :], shrunk(everyone)], axis=1))
+
+        def second_point(which, c):
+            col = np.where(c == 2.0, 1, np.where(c == 0.5, 2, 3))      # the column of coefs
+            return points[which, col], cost[which, col]
+
+        def shrink_points(which):
+            return points[which, 4:], cost[which, 4:]
+    else:
+        points, cost = score(everyone, (centroid + toward)[:, None, :])
+
+        def second_point(which, c):
+            p, f = score(which, (centroid[which] + c[:, None] * toward[which])[:, None, :])
+            return p[:, 0], f[:, 0]
+
+        def shrink_points(which):
+            return score(which, shrunk(which))
+    new, f_new = points[:, 0].copy(), cost[:, 0].copy()                  # reflected
+    coef = np.where(f_new < f_best, 2.0, np.where(f_new < f_next, 0.0, np.where(f_new < f_worst, 0.5, -0.5)))
+    second = np.flatnonzero(coef)
+    shrink = np.zeros(active.size, dtype=bool)
+    if second.size:
+        c = coef[second]
+        tried, f_tried = second_point(second, c)
+        taken = np.where(c == 2.0, f_tried < f_new[second],
+                         np.where(c == 0.5, f_tried <= f_new[second], f_tried < f_worst[second]))
+        new[second[taken]], f_new[second[taken]] = tried[taken], f_tried[taken]
+        shrink[second[~taken & (c != 2.0)]] = True            # a contraction that failed
+    keep = ~shrink
+    simplex[keep, -1], values[keep, -1] = new[keep], f_new[keep]
+    if shrink.any():
+        which = np.flatnonzero(shrink)
+        simplex[which, 1:], values[which, 1:] = shrink_points(which)
     return simplex, values
 
 
-def _closed_form_seeds(layout: Topology, center: tuple[float, complex], z0: float) -> list[np.ndarray]:
-    """Log-values of the exact single-frequency solutions at the band centre with this layout."""
-    f_c, z_c = center
-    return [np.log([e.value for e in elements])
-            for elements, _ in _closed_form_networks(z_c, f_c, z0)
-            if elements and _topology_name(elements) == layout.name]
+def _distinct(seeds: np.ndarray) -> np.ndarray:
+    """(R, k) mask of the seeds (R, k, n) that differ from every earlier seed of their row."""
+    same = np.all(seeds[:, :, None, :] == seeds[:, None, :, :], axis=-1)
+    earlier = np.tril(np.ones(same.shape[1:], dtype=bool), -1)
+    return ~np.any(same & earlier, axis=2)
 
 
-def _continuous_optima(family: _Rows, precision: _Precision, band: _Band) -> np.ndarray:
-    """Each layout's best part values (A, n) over the band, within the library ranges.
+def _center_starts(center_z: np.ndarray, center_hz: float, z0: float) -> list[tuple[int, int, str, np.ndarray]]:
+    """The exact single-frequency solutions at the band centre of each unit, as search
+    starts: (unit, rank, arrangement name, log-values), from :func:`_closed_form_networks`."""
+    return [(u, i, _topology_name(elements), np.log([e.value for e in elements]))
+            for u, z in enumerate(center_z)
+            for i, (elements, _) in enumerate(_closed_form_networks(complex(z), center_hz, z0))
+            if elements]
 
-    Each layout is searched (on a subset of the band points) from the best local minima
-    of a coarse grid (``precision.grid_seeds``) and from each exact solution at the band
-    centre, all at once; the best of its searches over the whole band wins, and is
-    polished to the exact minimax when ``precision.polish``.
+
+def _starts(family: _Family, grid_seeds: np.ndarray, units: int, center_starts: list) -> tuple:
+    """Where each search starts: (layout (S,), unit (S,), log-values (S, n)).
+
+    Per unit and arrangement: its distinct grid seeds (best first), then the exact
+    single-frequency solutions at the band centre with this arrangement (from
+    ``center_starts``, see :func:`_center_starts`). Sorted by arrangement, then unit, so
+    the position orders stay adjacent.
     """
-    layouts, starts = [], []
-    for layout, seeds in zip(family.layouts, _coarse_grid(family, band, precision.grid_seeds)):
-        for start in list(np.unique(seeds, axis=0)) + _closed_form_seeds(layout, band.center, band.z0):
-            layouts.append(layout)             # family order: position orders stay adjacent
-            starts.append(start)
-    rows = _Rows.of(layouts, band.parts)
+    every = family.every_row(units)
+    row, rank = np.nonzero(_distinct(grid_seeds))
+    mine = [(family.index[name], u, grid_seeds.shape[1] + i, start)
+            for u, i, name, start in center_starts if name in family.index]
+    layout = np.concatenate([every.layout[row], [a for a, _, _, _ in mine]]).astype(int)
+    unit = np.concatenate([every.unit[row], [u for _, u, _, _ in mine]]).astype(int)
+    ranks = np.concatenate([rank, [r for _, _, r, _ in mine]])
+    start = np.concatenate([grid_seeds[row, rank]] + [s[None] for _, _, _, s in mine])
+    order = np.lexsort((ranks, unit, layout))
+    return layout[order], unit[order], start[order]
+
+
+def _first_best(group: np.ndarray, worst: np.ndarray) -> np.ndarray:
+    """Per group (``group`` rising), the row with the smallest ``worst``, the first on ties."""
+    order = np.lexsort((np.arange(group.size), worst, group))
+    return order[np.concatenate(([True], group[order][1:] != group[order][:-1]))]
+
+
+def _continuous_optima(family: _Family, precision: _Precision, band: _Band, grid: _Table,
+                       center_starts: list) -> np.ndarray:
+    """Each arrangement's best part values (R, n) for each unit over the band, within the
+    library ranges, in the row order of ``family.every_row``.
+
+    Each arrangement is searched (on a subset of the band points) from the best local
+    minima of the coarse grid (``precision.grid_seeds``) and from each exact solution at
+    the band centre, all at once; the best of its searches over the whole band wins, and
+    is polished to the exact minimax when ``precision.polish``.
+    """
+    units = band.center_z.size
+    grid_band = band.subset(_spread(band.freq_hz.size, _GRID_MAX_FREQS))
+    seeds = _coarse_grid(family.every_row(units), grid, grid_band, precision.grid_seeds)
+    layout, unit, starts = _starts(family, seeds, units, center_starts)
+    rows = family.rows(layout, unit)
     search = band.subset(_spread(band.freq_hz.size, _SEARCH_MAX_FREQS))
-    x = _nelder_mead(rows, np.clip(np.array(starts), rows.lo, rows.hi), _FIRST_STEP, precision, search)
+    x = _nelder_mead(rows, np.clip(starts, rows.lo, rows.hi), _FIRST_STEP, precision, search)
     worst = _rows_cost(rows, x[:, None, :], band)[:, 0]
-    best = []
-    for layout in family.layouts:
-        mine = [a for a, lay in enumerate(layouts) if lay == layout]
-        x_best = x[mine[int(np.argmin(worst[mine]))]]
-        best.append(np.exp(_polish(layout, x_best, band) if precision.polish else x_best))
-    return np.array(best)
+    best = x[_first_best(layout * units + unit, worst)]
+    if precision.polish:
+        for r, (a, u) in enumerate(zip(np.repeat(np.arange(len(family.layouts)), units),
+                                       np.tile(np.arange(units), len(family.layouts)))):
+            best[r] = _polish(family.rows([a], [0]), best[r], band.unit(u))
+    return np.exp(best)
 
 
 def _worst_points(mag: np.ndarray) -> np.ndarray:
@@ -544,7 +865,14 @@ def _worst_points(mag: np.ndarray) -> np.ndarray:
     return np.unique(np.clip(np.concatenate([peaks - 1, peaks, peaks + 1]), 0, mag.size - 1))
 
 
-def _epigraph_slsqp(rows: _Rows, x: np.ndarray, band: _Band) -> np.ndarray:
+def _mags(row: _Rows, log_values: np.ndarray, band: _Band) -> np.ndarray:
+    """|Gamma| (K, F) over the band points of one row at log-values (K, n)."""
+    values = [np.exp(log_values[None, :, s]) for s in range(log_values.shape[1])]
+    z_parts = _rows_impedances(row, values, band.freq_hz, band.parts)
+    return _reflection(row, z_parts, band, worst=False)[:, 0].T
+
+
+def _epigraph_slsqp(row: _Rows, x: np.ndarray, band: _Band) -> np.ndarray:
     """SLSQP on min t subject to |Gamma(f_i)| <= t at the band points, from log-values x.
 
     The constraint Jacobian is a forward difference, computed with the values in one
@@ -557,9 +885,8 @@ def _epigraph_slsqp(rows: _Rows, x: np.ndarray, band: _Band) -> np.ndarray:
     def mags(log_v):                        # |Gamma| (n + 1, F) at log_v and log_v + h e_j
         key = log_v.tobytes()
         if key not in memo:
-            points = (log_v + shifts)[None]
             memo.clear()
-            memo[key] = _rows_gamma(rows, [np.exp(points[..., s]) for s in range(n)], band)[0]
+            memo[key] = _mags(row, log_v + shifts, band)
         return memo[key]
 
     def gap(y):                             # t - |Gamma(f_i)| >= 0
@@ -569,15 +896,16 @@ def _epigraph_slsqp(rows: _Rows, x: np.ndarray, band: _Band) -> np.ndarray:
         m = mags(y[:n])
         return np.hstack([-(m[1:] - m[0]).T / _FD_STEP, np.ones((m.shape[1], 1))])
 
-    bounds = list(zip(rows.lo[0], rows.hi[0])) + [(0.0, None)]
+    bounds = list(zip(row.lo[0], row.hi[0])) + [(0.0, None)]
     result = minimize(lambda y: y[n], np.append(x, mags(x)[0].max()), jac=lambda y: np.eye(n + 1)[n],
                       method="SLSQP", bounds=bounds, options={"ftol": 1e-12, "maxiter": 100},
                       constraints=[{"type": "ineq", "fun": gap, "jac": gap_jacobian}])
-    return np.clip(result.x[:n], rows.lo[0], rows.hi[0])
+    return np.clip(result.x[:n], row.lo[0], row.hi[0])
 
 
-def _polish(layout: Topology, x: np.ndarray, band: _Band) -> np.ndarray:
-    """Sharpen a search result ``x`` (log-values, (n,)) to the exact minimax over the band.
+def _polish(row: _Rows, x: np.ndarray, band: _Band) -> np.ndarray:
+    """Sharpen a search result ``x`` (log-values, (n,)) of one row (of unit 0 of ``band``)
+    to the exact minimax over the band.
 
     The minimax is posed in its smooth epigraph form (:func:`_epigraph_slsqp`), which
     scipy's SLSQP follows along the ridges where the max over frequency has kinks
@@ -587,15 +915,13 @@ def _polish(layout: Topology, x: np.ndarray, band: _Band) -> np.ndarray:
     elsewhere, the new peaks join and it is solved again.
     The result is kept only if it is better over every band point.
     """
-    rows = _Rows.of([layout], band.parts)
-
     def mag(log_v):
-        return _rows_gamma(rows, [np.exp(log_v[None, s]) for s in range(log_v.size)], band)[0]
+        return _mags(row, log_v[None], band)[0]
 
     start_worst = mag(x).max()
     points, y = _worst_points(mag(x)), x
     for _ in range(_POLISH_ROUNDS):
-        y = _epigraph_slsqp(rows, y, band.subset(points))
+        y = _epigraph_slsqp(row, y, band.subset(points))
         now = mag(y)
         if np.argmax(now) in points:
             break
@@ -603,61 +929,109 @@ def _polish(layout: Topology, x: np.ndarray, band: _Band) -> np.ndarray:
     return y if mag(y).max() < start_worst else x
 
 
-def _standard_candidates(kind: str, value: float, series: str, parts: PartLibrary) -> np.ndarray:
-    """The standard values tried for one part: ``_SNAP_WINDOW`` below and above ``value``
-    inside the library range, padded by repeating the last one (always at least the
-    in-range value nearest to ``value``)."""
-    lo, hi = parts.ranges[kind]
-    near = neighbours(value, series, _SNAP_WINDOW)
-    near = near[(near >= lo * (1 - 1e-9)) & (near <= hi * (1 + 1e-9))]
-    if not near.size:
-        available = standard_values(series, lo, hi)
-        if not available.size:
-            unit = "H" if kind == "inductor" else "F"
-            raise MatchError(f"the part library has no {series} {kind} between "
-                             f"{format_si(lo, unit)} and {format_si(hi, unit)}", where=parts.path)
-        near = np.array([nearest_standard(np.clip(value, available[0], available[-1]), series)])
-    return np.pad(near, (0, 2 * _SNAP_WINDOW - near.size), mode="edge")
+# ---------------------------------------------------------------------------------------
+# Standard values
+
+@dataclass(frozen=True, eq=False)
+class _Standard:
+    """The standard values a search may pick: ``table`` holds every value of the series
+    inside the library range of each kind (with impedances at every band point),
+    ``coarse`` the same at ``_SNAP_MAX_FREQS`` of them; ``series_values`` is the whole
+    series (every decade) and ``series_first[kind]`` where the kind's range starts in it."""
+
+    table: _Table
+    coarse: _Table
+    coarse_points: np.ndarray
+    series_values: np.ndarray
+    series_first: dict
+
+    @classmethod
+    def of(cls, series: str, band: _Band) -> _Standard:
+        parts = band.parts
+        values = {}
+        for kind in KINDS:
+            lo, hi = parts.ranges[kind]
+            values[kind] = standard_values(series, lo, hi)
+            if not values[kind].size:
+                unit = "H" if kind == "inductor" else "F"
+                raise MatchError(f"the part library has no {series} {kind} between "
+                                 f"{format_si(lo, unit)} and {format_si(hi, unit)}", where=parts.path)
+        table = _Table.of(values, band.freq_hz, parts)
+        points = _spread(band.freq_hz.size, _SNAP_MAX_FREQS)
+        everything = standard_values(series, 0.0, math.inf)
+        return cls(table, table.subset(points).ranking(), points, everything,
+                   {k: int(np.searchsorted(everything, values[k][0])) for k in KINDS})
+
+    def window(self, inductor: np.ndarray, centres: np.ndarray) -> np.ndarray:
+        """Per row, the columns of ``table`` tried for one part of kind ``inductor`` (R,):
+        the ``_SNAP_WINDOW`` standard values below and above ``centres`` (R,) inside the
+        library range, padded by repeating the last one (always at least the in-range
+        value nearest to the centre): (R, 2 * _SNAP_WINDOW)."""
+        first = np.where(inductor, self.series_first["inductor"], self.series_first["capacitor"])
+        count = self.table.of_kind(inductor, "count")
+        at = np.searchsorted(self.series_values, centres * (1 + 1e-12), side="right")
+        lo, hi = np.maximum(at - _SNAP_WINDOW, first), np.minimum(at + _SNAP_WINDOW, first + count)
+        empty = hi <= lo                                   # the range lies beyond the window
+        lo = np.where(empty, np.where(at + _SNAP_WINDOW <= first, 0, count - 1), lo - first)
+        hi = np.where(empty, lo + 1, hi - first)
+        cols = np.minimum(lo[:, None] + np.arange(2 * _SNAP_WINDOW), hi[:, None] - 1)
+        return self.table.of_kind(inductor, "first")[:, None] + cols
 
 
-def _best_in_window(family: _Rows, centres: np.ndarray, series: str, band: _Band,
-                    coarse: _Band) -> tuple[np.ndarray, np.ndarray]:
-    """Per layout, the best standard values within ``_SNAP_WINDOW`` steps of ``centres`` (A, n).
+def _windows(rows: _Rows, centres: np.ndarray, standard: _Standard) -> np.ndarray:
+    """Per row and part slot, the standard values tried around ``centres`` (R, n): the
+    table columns (R, n, 2 * _SNAP_WINDOW) of :meth:`_Standard.window`."""
+    return np.stack([standard.window(rows.inductor[:, s], centres[:, s])
+                     for s in range(centres.shape[1])], axis=1)
 
-    Every combination is scored on the ``coarse`` subset of the band points, and the
-    ``_SNAP_FINALISTS`` best of each layout are scored again on every band point.
-    Returns the values (A, n) and their worst |Gamma| over the band (A,).
+
+def _best_in_window(rows: _Rows, windows: np.ndarray, standard: _Standard,
+                    band: _Band) -> tuple[np.ndarray, np.ndarray]:
+    """Per row, the best combination of the standard values ``windows`` (R, n, P).
+
+    Every combination is scored on the coarse subset of the band points, and the
+    ``_SNAP_FINALISTS`` best of each row are scored again on every band point.
+    Returns the table columns (R, n) and their worst |Gamma| over the band (R,).
     """
-    axes = [np.array([_standard_candidates(lay.kinds[s], c[s], series, band.parts)
-                      for lay, c in zip(family.layouts, centres)]) for s in range(centres.shape[1])]
-    worst = _grid_worst(family, axes, coarse)
-    cand = _grid_values(axes, np.argsort(worst, axis=1, kind="stable")[:, :_SNAP_FINALISTS])
-    worst = _rows_cost(family, np.log(cand), band)
-    best, rows = np.argmin(worst, axis=1), np.arange(len(family.layouts))
-    return cand[rows, best], worst[rows, best]
+    axes = list(windows.transpose(1, 0, 2))
+    worst = _grid_worst(rows, axes, standard.coarse, band.subset(standard.coarse_points))
+    cand = _grid_values(axes, _smallest(worst, _SNAP_FINALISTS))
+    worst = _reflection(rows, [standard.table.z[:, cand[..., s]] for s in range(cand.shape[-1])], band)
+    best, r = np.argmin(worst, axis=1), np.arange(rows.layout.size)
+    return cand[r, best], worst[r, best]
 
 
-def _best_standard(family: _Rows, values: np.ndarray, series: str, band: _Band) -> np.ndarray:
-    """Per layout, the best joint choice of standard values near the optimum ``values`` (A, n).
+def _best_standard(rows: _Rows, values: np.ndarray, standard: _Standard, band: _Band) -> np.ndarray:
+    """Per row, the best joint choice of standard values near the optimum ``values`` (R, n).
 
     Near-optimal networks lie along a valley in (log L, log C), and the best standard pair
     can sit well away from the continuous optimum along it. So the window of standard
-    values is re-centred on the best pair found, for the layouts where that improved the
-    worst-in-band match, until none improves (``_SNAP_ROUNDS`` rounds at most).
+    values is re-centred on the best pair found, for the rows where that improved the
+    worst-in-band match, until none improves (``_SNAP_ROUNDS`` rounds at most). A row
+    whose re-centred window is the window it was just scored on cannot improve and is
+    not scored again.
     """
-    coarse = band.subset(_spread(band.freq_hz.size, _SNAP_MAX_FREQS))
-    best, score = _best_in_window(family, values, series, band, coarse)
-    active = np.arange(len(family.layouts))
+    windows = _windows(rows, values, standard)
+    best, score = _best_in_window(rows, windows, standard, band)
+    active = np.arange(rows.layout.size)
     for _ in range(_SNAP_ROUNDS - 1):
-        rows = _Rows.of([family.layouts[a] for a in active], band.parts)
-        moved, moved_score = _best_in_window(rows, best[active], series, band, coarse)
+        moved_windows = _windows(rows.take(active), standard.table.values[best[active]], standard)
+        changed = np.any(moved_windows != windows[active], axis=(1, 2))
+        active, moved_windows = active[changed], moved_windows[changed]
+        if not active.size:
+            break
+        moved, moved_score = _best_in_window(rows.take(active), moved_windows, standard, band)
         better = moved_score < score[active]
         if not better.any():
             break
         active = active[better]
+        windows[active] = moved_windows[better]
         best[active], score[active] = moved[better], moved_score[better]
-    return best
+    return standard.table.values[best]
 
+
+# ---------------------------------------------------------------------------------------
+# The search and its results
 
 @dataclass(frozen=True)
 class _Precision:
@@ -683,12 +1057,103 @@ def _precision(series: str) -> _Precision:
                       grid_seeds=1, polish=False)
 
 
-def _worth_listing(found: list[Solution], bare: Solution) -> list[Solution]:
-    """Solutions that beat, by ``_MIN_GAIN_DB``, the bare load and every network with fewer
-    parts (a part that does not improve the match is left out)."""
-    def best_simpler(s: Solution) -> float:
-        return max(o.return_loss_db for o in [bare, *found] if len(o.elements) < len(s.elements))
-    return [s for s in found if s.return_loss_db > best_simpler(s) + _MIN_GAIN_DB]
+def _row_figures(rows: _Rows, values: np.ndarray, band: _Band) -> np.ndarray:
+    """(3, R): worst return loss dB, return loss at the centre dB, smallest delivered
+    fraction, of each row's network with part values ``values`` (R, n)."""
+    f = np.append(band.freq_hz, band.center_hz)
+    z_load = np.vstack([band.z_load, band.center_z])[:, rows.unit]
+    z_parts = _rows_impedances(rows, list(values.T), f, band.parts)
+    out = np.empty((3, rows.layout.size))
+    for order, pick in rows.order_rows.items():
+        out[:, pick] = _figures(list(zip(order, (z[:, pick] for z in z_parts))), z_load[:, pick], band.z0)
+    return out
+
+
+def _solutions(families: list[_Family], optima: list[np.ndarray], band: _Band,
+               series: str) -> list[list[Solution]]:
+    """Per unit, the networks worth listing (see :func:`match_band`), best first.
+
+    optima : per family, the part values (R, n) of each row of ``family.every_row``.
+    """
+    units = band.center_z.size
+    bare = _figures([], np.vstack([band.z_load, band.center_z]), band.z0)
+    best_simpler = {0: bare[0]}           # parts -> best worst-in-band RL (U,) with that many
+    listed = []
+    for fam, values in sorted(zip(families, optima), key=lambda pair: pair[0].parts_per_layout):
+        n, count = fam.parts_per_layout, len(fam.layouts)
+        fig = _row_figures(fam.every_row(units), values, band).reshape(3, count, units)
+        bar = np.max([rl for m, rl in best_simpler.items() if m < n], axis=0)
+        listed.append((fam, values.reshape(count, units, n), fig, fig[0] > bar + _MIN_GAIN_DB))
+        best_simpler[n] = np.max(fig[0], axis=0)
+    out, elements = [], {}                # parts shared by many units are made once
+    for u in range(units):
+        found = [_solution(fam.layouts[a], values[a, u], fig[:, a, u], series, band.parts, elements)
+                 for fam, values, fig, keep in listed for a in np.flatnonzero(keep[:, u])]
+        found.sort(key=lambda s: (-s.return_loss_db, len(s.elements), -s.delivered_fraction_min, s.topology))
+        out.append(found or [Solution((), "none", *(float(b[u]) for b in bare), series)])
+    return out
+
+
+def _solution(layout: Topology, values: np.ndarray, figures: np.ndarray, series: str,
+              parts: PartLibrary, elements: dict) -> Solution:
+    """The :class:`Solution` of ``layout`` with part ``values`` (n,) and its ``figures`` (3,);
+    ``elements`` keeps the parts made so far, by (position, kind, value)."""
+    made = []
+    for key in zip(layout.positions, layout.kinds, values.tolist()):
+        if key not in elements:
+            position, kind, value = key
+            elements[key] = Element(position, kind, value, parts.model_for(kind, value))
+        made.append(elements[key])
+    return Solution(tuple(made), layout.name, *figures.tolist(), series)
+
+
+def _match_chunk(f_b: np.ndarray, z_b: np.ndarray, center_z: np.ndarray, z0: float,
+                 series: str, parts: PartLibrary) -> list[list[Solution]]:
+    """:func:`match_band_many` on the band points ``f_b`` (F,) of a few units ``z_b`` (U, F)."""
+    band = _Band(f_b, np.ascontiguousarray(z_b.T), float(z0), parts, 0.5 * (f_b[0] + f_b[-1]), center_z)
+    families = [_Family.of(TOPOLOGIES, parts), _Family.of(SINGLE_PARTS, parts)]
+    grid = _grid_table(families, band.subset(_spread(f_b.size, _GRID_MAX_FREQS)))
+    standard = _Standard.of(series, band) if series != "ideal" else None
+    center_starts = _center_starts(center_z, band.center_hz, band.z0)
+    optima = []
+    for family in families:
+        values = _continuous_optima(family, _precision(series), band, grid, center_starts)
+        if standard is not None:
+            values = _best_standard(family.every_row(center_z.size), values, standard, band)
+        optima.append(values)
+    return _solutions(families, optima, band, series)
+
+
+def match_band_many(freq_hz, z_units, band_hz, z0: float = 50.0, series: str = "E24",
+                    parts: PartLibrary | None = None, where=()) -> list[list[Solution]]:
+    """:func:`match_band` for U units measured on one frequency grid, searched together.
+
+    freq_hz : (F,) the shared sweep frequencies, Hz, rising.
+    z_units : (U, F) each unit's load impedance there, ohm.
+    where   : one source name per unit for error messages (or one for all).
+
+    Returns one solution list per unit, the same as :func:`match_band` gives for that
+    unit alone (it is this function with U = 1): the searches of all units run as one
+    array evaluation per step, each search stopping on its own convergence test, so
+    nothing a unit gets depends on the units beside it. Units are searched
+    ``_UNITS_PER_CHUNK`` at a time to bound the memory. A unit whose band points are
+    unusable (see :func:`band_points`) raises :class:`MatchError` naming its source.
+    """
+    series = check_series(series)
+    parts = parts or ideal_library()
+    f = np.asarray(freq_hz, dtype=float)
+    z = np.asarray(z_units, dtype=complex)
+    places = _places(where, z.shape[0] if z.ndim else 1)
+    if z.ndim == 2 and not z.shape[0]:
+        _check_sweeps(f, z, z0, places)
+        return []
+    f_b, z_b = _band_points_many(f, z, band_hz, z0, places)
+    center_z = _interpolate_z(f, z, 0.5 * (f_b[0] + f_b[-1]), z0)
+    out = []
+    for start in range(0, z.shape[0], _UNITS_PER_CHUNK):
+        chunk = slice(start, start + _UNITS_PER_CHUNK)
+        out.extend(_match_chunk(f_b, z_b[chunk], center_z[chunk], z0, series, parts))
+    return out
 
 
 def match_band(freq_hz, z_load, band_hz, z0: float = 50.0, series: str = "E24",
@@ -714,24 +1179,7 @@ def match_band(freq_hz, z_load, band_hz, z0: float = 50.0, series: str = "E24",
     Listed: each arrangement whose best beats the bare load and every network with fewer
     parts by 0.01 dB; when none does, the one solution is the empty network ("no
     network needed"). Sorted by worst-in-band return loss, then fewer parts, then more
-    power delivered.
+    power delivered. The one-unit case of :func:`match_band_many`.
     """
-    series = check_series(series)
-    f_b, z_b = band_points(freq_hz, z_load, band_hz, z0, where)
-    parts = parts or ideal_library()
-    f_c = 0.5 * (f_b[0] + f_b[-1])
-    z_c = complex(_interpolate_z(np.asarray(freq_hz, float), np.asarray(z_load, complex), f_c, z0))
-    band = _Band(f_b, z_b, float(z0), parts, (f_c, z_c))
-    found = []
-    for family in (_Rows.of(TOPOLOGIES, parts), _Rows.of(SINGLE_PARTS, parts)):
-        optima = _continuous_optima(family, _precision(series), band)
-        if series != "ideal":
-            optima = _best_standard(family, optima, series, band)
-        for layout, values in zip(family.layouts, optima):
-            elements = tuple(Element(p, k, float(v), parts.model_for(k, float(v)))
-                             for p, k, v in zip(layout.positions, layout.kinds, values))
-            found.append(_evaluate(elements, layout.name, series, f_b, z_b, band.center, z0))
-    bare = _evaluate((), "none", series, f_b, z_b, band.center, z0)
-    listed = _worth_listing(found, bare)
-    listed.sort(key=lambda s: (-s.return_loss_db, len(s.elements), -s.delivered_fraction_min, s.topology))
-    return listed or [bare]
+    z_units = np.asarray(z_load, dtype=complex)[np.newaxis]
+    return match_band_many(freq_hz, z_units, band_hz, z0, series, parts, [where])[0]

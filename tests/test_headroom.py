@@ -19,8 +19,8 @@ from scipy.integrate import quad
 from scipy.optimize import brentq
 
 from pipeline.errors import MatchError
-from pipeline.headroom import (Bound, analyse_band, bode_fano_bound, estimate_q, headroom,
-                               q_at, summarise_lot)
+from pipeline.headroom import (Bound, analyse_band, analyse_band_many, bode_fano_bound, estimate_q,
+                               headroom, q_at, summarise_lot)
 from pipeline.match import match_at, match_band
 from pipeline.networks import element_ladder, gamma_in, reflection
 
@@ -399,6 +399,65 @@ def test_two_resonances_are_flagged_rough():
     # one clean resonance over a modest band is not flagged
     z1 = series_rlc_of_q(f, 50, 15, 1e9)
     assert not analyse_band(f, z1, (0.97e9, 1.03e9), 10.0).estimate_rough
+
+
+# --------------------------------------------------------------------- many units at once
+
+def _varied_loads(f, seed):
+    """(U, N) invented loads: series and parallel RLCs of Q 2-30 (so the adaptive windows
+    differ from unit to unit), each with -50 dB of S11 noise."""
+    rng = np.random.default_rng(seed)
+    loads = []
+    for i in range(24):
+        make = series_rlc_of_q if i % 2 else parallel_rlc_of_q
+        z = make(f, rng.uniform(10, 200), rng.uniform(2, 30), rng.uniform(0.95, 1.05) * F0)
+        loads.append(with_s11_noise(z, -50, seed=i))
+    return np.array(loads)
+
+
+def _qz_alone(f, z, window_hz):
+    """Yaghjian-Best Q_Z of one load from 1-D Savitzky-Golay fits over ``window_hz``
+    (the formula of the module docstring, written out here on its own)."""
+    from scipy.signal import savgol_filter
+
+    w = 2 * np.pi * f
+    points = int(round(window_hz / (f[1] - f[0]))) + 1
+    r, x = (savgol_filter(part, points, 3, delta=w[1] - w[0]) for part in (z.real, z.imag))
+    dr, dx = (savgol_filter(part, points, 3, deriv=1, delta=w[1] - w[0]) for part in (z.real, z.imag))
+    return w / (2 * r) * np.hypot(dr, dx + np.abs(x) / w)
+
+
+@pytest.mark.parametrize("window_hz", [None, 3e6])
+def test_many_units_equal_each_unit_alone(window_hz):
+    z = _varied_loads(SWEEP, seed=3)
+    band = (0.98 * F0, 1.02 * F0)
+    achieved = np.linspace(3.0, 15.0, len(z))
+    many = analyse_band_many(SWEEP, z, band, achieved, spec_rl_db=10.0, window_hz=window_hz)
+    windows = {h.q_window_hz for h in many}
+    assert len(windows) >= (1 if window_hz else 4)          # several window groups at once
+    for zu, rl, h in zip(z, achieved, many):
+        alone = analyse_band(SWEEP, zu, band, rl, spec_rl_db=10.0, window_hz=window_hz)
+        assert h.as_dict().keys() == alone.as_dict().keys()
+        for key, value in h.as_dict().items():
+            if isinstance(value, float):
+                assert value == pytest.approx(alone.as_dict()[key], rel=1e-9), key
+            else:
+                assert value == alone.as_dict()[key], key
+        # the same window, smoothed one unit at a time with scipy directly
+        q_centre = np.interp(h.bound.center_hz, SWEEP, _qz_alone(SWEEP, zu, h.q_window_hz))
+        assert h.bound.q == pytest.approx(q_centre, rel=1e-9)
+
+
+def test_many_units_on_an_uneven_sweep():
+    f = np.sort(np.concatenate([np.linspace(0.8 * F0, 1.2 * F0, 300), np.linspace(0.99 * F0, 1.01 * F0, 51)[1:-1]]))
+    z = _varied_loads(f, seed=4)[:6]
+    band = (0.98 * F0, 1.02 * F0)
+    many = analyse_band_many(f, z, band, np.full(6, 8.0))
+    for zu, h in zip(z, many):
+        assert h.as_dict() == pytest.approx(analyse_band(f, zu, band, 8.0).as_dict(), rel=1e-9)
+    assert analyse_band_many(f, z[:0], band, []) == []
+    with pytest.raises(ValueError, match="do not fit"):
+        analyse_band_many(f, z, band, [8.0])
 
 
 # --------------------------------------------------------------------- per lot

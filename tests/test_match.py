@@ -23,8 +23,8 @@ from skrf.media import DefinedGammaZ0
 from pipeline import metrics
 from pipeline.elements import Element
 from pipeline.errors import ConfigError, MatchError
-from pipeline.match import (Solution, band_points, match_at, match_band, predicted_gamma,
-                            worst_return_loss)
+from pipeline.match import (Solution, band_points, match_at, match_band, match_band_many,
+                            predicted_gamma, predicted_gamma_many, worst_return_loss)
 from pipeline.networks import TOPOLOGIES
 from pipeline.parts import load_parts
 
@@ -445,3 +445,125 @@ def test_return_loss_vswr_trade_facts():
     # RLVSWR-RL10: RL 10 dB <-> VSWR 1.925 (published), |Gamma| 0.316
     assert float(metrics.vswr(metrics.gamma_from_return_loss(10.0))) == pytest.approx(1.925, abs=0.0005)
     assert float(metrics.gamma_from_return_loss(10.0)) == pytest.approx(0.316, abs=0.0005)
+
+
+# --- many units at once (match_band_many) -----------------------------------------------
+
+def _make_samples():
+    """The sample generator (sample_measurements/make_samples.py), for its antenna model."""
+    import importlib.util
+    import sys
+    from pathlib import Path
+
+    path = Path(__file__).resolve().parents[1] / "sample_measurements" / "make_samples.py"
+    spec = importlib.util.spec_from_file_location("make_samples", path)
+    module = importlib.util.module_from_spec(spec)
+    sys.modules["make_samples"] = module          # dataclasses look their module up
+    spec.loader.exec_module(module)
+    return module
+
+
+def varied_lot(n_units: int, seed: int, f: np.ndarray) -> np.ndarray:
+    """(U, F) impedances of invented loads, in turn a series RLC, a parallel RLC and the
+    sample generator's antenna model (radiator, feed inductance, pad capacitance), each
+    with random values and -50 dB of S11 noise."""
+    from dataclasses import replace
+
+    samples = _make_samples()
+    rng = np.random.default_rng(seed)
+    w = 2 * np.pi * f
+    units = []
+    for i in range(n_units):
+        f0 = rng.uniform(820e6, 1000e6)
+        if i % 3 == 0:
+            r, q = rng.uniform(5, 120), rng.uniform(1, 10)
+            l = q * r / (2 * np.pi * f0)
+            z = r + 1j * w * l + 1 / (1j * w / ((2 * np.pi * f0) ** 2 * l))
+        elif i % 3 == 1:
+            r, q = rng.uniform(20, 600), rng.uniform(1, 8)
+            l = r / (q * 2 * np.pi * f0)
+            z = 1 / (1 / r + 1 / (1j * w * l) + 1j * w / ((2 * np.pi * f0) ** 2 * l))
+        else:
+            z = replace(samples.LARKSPUR, fs_hz=f0, r_rad_ohm=rng.uniform(5, 40), r_loss_ohm=rng.uniform(0.5, 5),
+                        q=rng.uniform(4, 15), l_feed_h=rng.uniform(0, 3e-9),
+                        c_pad_f=rng.uniform(0, 1.2e-12)).impedance(f)
+        g = (z - 50) / (z + 50) + samples.noise(rng, f.size)
+        units.append(50 * (1 + g) / (1 - g))
+    return np.array(units)
+
+
+def _same_lists(many, alone):
+    """Both give every unit the same arrangements, standard values and figures (1e-9 dB)."""
+    assert len(many) == len(alone)
+    for a, b in zip(many, alone):
+        assert [(s.topology, _values(s)) for s in a] == [(s.topology, _values(s)) for s in b]
+        for x, y in zip(a, b):
+            assert x.return_loss_db == pytest.approx(y.return_loss_db, abs=1e-9)
+            assert x.return_loss_center_db == pytest.approx(y.return_loss_center_db, abs=1e-9)
+            assert x.delivered_fraction_min == pytest.approx(y.delivered_fraction_min, abs=1e-12)
+            assert [e.model for e in x.elements] == [e.model for e in y.elements]
+
+
+@pytest.mark.parametrize("parts, series", [(GENERIC, "E24"), (IDEAL, "E12")])
+def test_many_units_get_their_own_answers(parts, series):
+    # 120 varied units on one grid: two chunks of the batched search, whose answers must
+    # not depend on the units beside them.
+    f = np.linspace(700e6, 1100e6, 401)
+    z = varied_lot(120, seed=11, f=f)
+    many = match_band_many(f, z, (860e6, 960e6), series=series, parts=parts)
+    _same_lists(many, [match_band(f, zu, (860e6, 960e6), series=series, parts=parts) for zu in z])
+    # and a different company of units changes nothing
+    _same_lists(match_band_many(f, z[::-7], (860e6, 960e6), series=series, parts=parts), many[::-7])
+
+
+def test_many_units_exact_values():
+    f = np.linspace(700e6, 1100e6, 401)
+    z = varied_lot(9, seed=5, f=f)
+    many = match_band_many(f, z, (860e6, 960e6), series="ideal", parts=IDEAL)
+    _same_lists(many, [match_band(f, zu, (860e6, 960e6), series="ideal", parts=IDEAL) for zu in z])
+
+
+def test_many_units_of_the_sample_lot():
+    # sample_measurements/lot-915: the readable units (one file is cut short) on their grid
+    from pathlib import Path
+
+    from pipeline.acquire import read_sweep
+    from pipeline.errors import InputFileError
+
+    sweeps = []
+    for path in sorted((Path(__file__).resolve().parents[1] / "sample_measurements" / "lot-915").glob("*.s1p")):
+        try:
+            sweeps.append(read_sweep(path))
+        except InputFileError:
+            continue
+    assert len(sweeps) >= 60
+    f = sweeps[0].freq_hz
+    assert all(np.array_equal(s.freq_hz, f) for s in sweeps)
+    z = np.stack([s.z_ohm for s in sweeps])
+    many = match_band_many(f, z, (902e6, 928e6), series="E24", parts=GENERIC)
+    _same_lists(many, [match_band(f, zu, (902e6, 928e6), series="E24", parts=GENERIC) for zu in z])
+    assert all(sols[0].elements and sols[0].return_loss_db > 10 for sols in many)
+
+
+def test_many_units_name_the_bad_one():
+    f = np.linspace(700e6, 1100e6, 401)
+    z = np.stack([_antenna(f, r=r) for r in (15.0, 20.0, 30.0)])
+    z[1, 200] = -3 + 10j                                   # unit 1 is not passive in band
+    with pytest.raises(MatchError, match="not positive at 1 points") as caught:
+        match_band_many(f, z, (860e6, 960e6), where=["a.s1p", "b.s1p", "c.s1p"])
+    assert str(caught.value).startswith("b.s1p: ")
+    with pytest.raises(MatchError, match="not inside the sweep"):
+        match_band_many(f, z, (600e6, 960e6), where="lot")
+    assert match_band_many(f, z[:0], (860e6, 960e6)) == []
+
+
+def test_predicted_gamma_many_equals_one_network_at_a_time():
+    f = np.linspace(700e6, 1100e6, 401)
+    z = varied_lot(12, seed=8, f=f)
+    networks = [s[0].elements for s in match_band_many(f, z, (860e6, 960e6), series="E24", parts=GENERIC)]
+    networks[3] = ()                                                        # the bare load
+    networks[4] = tuple(Element(e.position, e.kind, e.value) for e in networks[5])   # ideal parts
+    many = predicted_gamma_many(networks, f, z, 50.0)
+    assert many.shape == z.shape
+    for elements, zu, g in zip(networks, z, many):
+        assert np.array_equal(g, predicted_gamma(elements, f, zu, 50.0))

@@ -21,14 +21,14 @@ app = typer.Typer(
     pretty_exceptions_enable=False,
 )
 
-# Sub-command modules register themselves on `app` when imported.
+# Sub-command modules register themselves on `app` when imported (this order is --help's).
+from pipeline.cli import lot_cmd  # noqa: E402,F401  (lot, demo)
 from pipeline.cli import match_cmd  # noqa: E402,F401
-from pipeline.cli import results_cmd  # noqa: E402,F401
 from pipeline.cli import fixture_cmd  # noqa: E402,F401
-from pipeline.cli import watch_cmd  # noqa: E402,F401
-from pipeline.cli import lot_cmd  # noqa: E402,F401
-from pipeline.cli import measure_cmd  # noqa: E402,F401
+from pipeline.cli import results_cmd  # noqa: E402,F401
 from pipeline.cli import report_cmd  # noqa: E402,F401
+from pipeline.cli import watch_cmd  # noqa: E402,F401
+from pipeline.cli import measure_cmd  # noqa: E402,F401
 
 
 def main(argv: list[str] | None = None) -> int:

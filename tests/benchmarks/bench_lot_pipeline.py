@@ -25,6 +25,7 @@ import numpy as np
 import skrf
 
 ROOT = Path(__file__).resolve().parents[2]
+sys.path.insert(0, str(ROOT))        # this checkout's pipeline, not whichever one is installed
 
 
 def _samples():
