@@ -329,8 +329,9 @@ def _print_readable(result: MatchResult, plot_path: Path | None) -> None:
     if result.headroom is not None:
         h = result.headroom.as_dict()
         if h["rl_bound_db"] is not None:
+            limit = "above 40 dB" if h["rl_bound_db"] > 40 else f"{h['rl_bound_db']:.1f} dB"
             console.print(f"Bode–Fano limit for this antenna over the band (Q ≈ {h['q_estimate']:.1f}): "
-                          f"{_rl_text(h['rl_bound_db'])} with an ideal network of any order.")
+                          f"{limit} with an ideal lossless network of any order.")
         console.print(f"Headroom: {h['verdict']}")
     console.print("[dim]Check on the board: part tolerances, pads and nearby ground shift the match.[/]")
     if plot_path is not None:

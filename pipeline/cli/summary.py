@@ -66,9 +66,11 @@ def print_lot_summary(summary: dict, console: Console) -> None:
     if failing:
         console.print(f"left failing by the shared network ({len(failing)}): {_listing(failing)}")
     headroom = summary.get("headroom")
-    if headroom and headroom.get("q_estimate"):
-        q, gap = headroom["q_estimate"], headroom["headroom_db"]
+    if headroom and headroom.get("q_estimate") and headroom.get("rl_bound_db"):
+        q, bound = headroom["q_estimate"], headroom["rl_bound_db"]["median"]
+        limit = ("above 40 dB: the antennas are not what limits the match" if bound > 40
+                 else f"{bound:.1f} dB (median headroom {headroom['headroom_db']['median']:.1f} dB)")
         console.print(f"antenna Q across units: median {q['median']:.1f} (p10 {q['p10']:.1f}, "
-                      f"p90 {q['p90']:.1f}); Bode–Fano headroom median {gap['median']:.1f} dB")
+                      f"p90 {q['p90']:.1f}); Bode–Fano limit over the band, median: {limit}")
     console.print("[dim]Predicted from measurements and part models; confirm on built boards. "
                   "Predictions do not replace compliance testing.[/]")
