@@ -12,9 +12,8 @@ from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, T
 
 from pipeline import batch
 from pipeline.cli import app
-from pipeline.cli.options import (EPS_EFF, FIXTURE, LOSS_REF, PORT_DELAY, PORT_LENGTH, PORT_LOSS,
-                                  PORT_LOSS_DC, VELOCITY_FACTOR, FixtureFlags, build_settings,
-                                  load_station)
+from pipeline.cli.options import (FixtureFlags, build_settings, load_station,
+                                  with_fixture_flags)
 from pipeline.cli.summary import print_lot_summary
 from pipeline.lotjob import analyse_lot, process_lot
 from pipeline.report import write_report
@@ -50,6 +49,7 @@ def run_lot(paths: list[str], settings, store_path: str, *, workers=None, cluste
 
 
 @app.command("lot")
+@with_fixture_flags
 def lot(
     paths: List[str] = typer.Argument(..., help="Touchstone files, folders (searched recursively) or globs."),
     band: Optional[str] = typer.Option(None, help="Band to match over, e.g. 902M:928M."),
@@ -58,14 +58,7 @@ def lot(
     spec_rl: Optional[float] = typer.Option(None, help="Return loss (dB) a unit must reach over the band."),
     series: Optional[str] = typer.Option(None, help="Part series: E6, E12, E24, E48, E96, E192 or ideal."),
     parts: Optional[str] = typer.Option(None, help="Part library name under configs/parts/ or a file."),
-    fixture: Optional[str] = FIXTURE,
-    port_delay: Optional[str] = PORT_DELAY,
-    port_length: Optional[str] = PORT_LENGTH,
-    velocity_factor: Optional[str] = VELOCITY_FACTOR,
-    eps_eff: Optional[str] = EPS_EFF,
-    port_loss: Optional[str] = PORT_LOSS,
-    port_loss_dc: Optional[str] = PORT_LOSS_DC,
-    loss_ref: Optional[str] = LOSS_REF,
+    fixture_flags: FixtureFlags = None,
     z0: Optional[float] = typer.Option(None, help="Reference impedance, ohm."),
     port: Optional[int] = typer.Option(None, help="Port whose reflection is matched in N-port files."),
     station: Optional[str] = typer.Option(None, help="Station file under configs/stations/ with defaults."),
@@ -77,8 +70,7 @@ def lot(
 ):
     """Match every unit of a lot, log it in the store, choose one BOM for the line."""
     settings = build_settings(band=band, z0=z0, spec_rl=spec_rl, series=series, parts=parts,
-                              fixture=FixtureFlags(fixture, port_delay, port_length, velocity_factor,
-                                                   eps_eff, port_loss, port_loss_dc, loss_ref),
+                              fixture=fixture_flags,
                               port=port,
                               lot=lot_id or _default_lot_id(paths), station=load_station(station))
     run_lot(paths, settings, store, workers=workers, cluster=cluster, batch_size=batch_size,

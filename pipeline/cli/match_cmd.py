@@ -25,8 +25,7 @@ import typer
 from pipeline import metrics
 from pipeline.acquire import IngestWarning, read_sweep
 from pipeline.cli import app
-from pipeline.cli.options import (EPS_EFF, FIXTURE, LOSS_REF, PORT_DELAY, PORT_LENGTH, PORT_LOSS,
-                                  PORT_LOSS_DC, VELOCITY_FACTOR, FixtureFlags)
+from pipeline.cli.options import FixtureFlags, with_fixture_flags
 from pipeline.config import load_defaults
 from pipeline.deembed import FixtureChain, passivity_warning
 from pipeline.elements import Element
@@ -71,6 +70,7 @@ class MatchResult:
 
 
 @app.command("match")
+@with_fixture_flags
 def match(
     file: str = typer.Argument(..., help="Touchstone file (.s1p, .s2p, ... or .ts)."),
     at: Optional[str] = typer.Option(None, "--at", help="Match exactly at one frequency, e.g. 915M."),
@@ -84,20 +84,11 @@ def match(
     plot: Optional[str] = typer.Option(None, "--plot", help="Write the return-loss / Smith-chart figure (PNG)."),
     max_mb: Optional[float] = typer.Option(None, "--max-mb", help="Refuse input files larger than this (MB)."),
     spec_rl: Optional[float] = typer.Option(None, "--spec-rl", help="Return loss (dB) the match must reach (for the headroom verdict)."),
-    fixture: Optional[str] = FIXTURE,
-    port_delay: Optional[str] = PORT_DELAY,
-    port_length: Optional[str] = PORT_LENGTH,
-    velocity_factor: Optional[str] = VELOCITY_FACTOR,
-    eps_eff: Optional[str] = EPS_EFF,
-    port_loss: Optional[str] = PORT_LOSS,
-    port_loss_dc: Optional[str] = PORT_LOSS_DC,
-    loss_ref: Optional[str] = LOSS_REF,
+    fixture_flags: FixtureFlags = None,
 ) -> None:
     """Design a two-element L-network for a measured antenna."""
-    flags = FixtureFlags(fixture, port_delay, port_length, velocity_factor, eps_eff, port_loss,
-                         port_loss_dc, loss_ref)
     request = _request(at=at, band=band, port=port, z0=z0, series=series, parts=parts,
-                       max_mb=max_mb, spec_rl=spec_rl, fixture=flags)
+                       max_mb=max_mb, spec_rl=spec_rl, fixture=fixture_flags)
     plot_path = _checked_plot_path(plot)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", IngestWarning)

@@ -31,9 +31,8 @@ from instruments import Analyzer, SimulatedAnalyzer, load_profile
 from pipeline.bench import (BenchPlan, BenchSession, Measurement, SessionTally, check_dut_id, plan_sweep,
                             read_dut_ids, run_loop)
 from pipeline.cli import app
-from pipeline.cli.options import (EPS_EFF, FIXTURE, LOSS_REF, PORT_DELAY, PORT_LENGTH, PORT_LOSS,
-                                  PORT_LOSS_DC, VELOCITY_FACTOR, FixtureFlags, build_settings,
-                                  load_station)
+from pipeline.cli.options import (FixtureFlags, build_settings, load_station,
+                                  with_fixture_flags)
 from pipeline.deembed import passivity_warning, summarize_step
 from pipeline.elements import Element
 from pipeline.errors import ConfigError, InputFileError, MatchbayError
@@ -58,6 +57,7 @@ CAUTION = (
 
 
 @app.command("measure")
+@with_fixture_flags
 def measure(
     load: Optional[str] = typer.Argument(
         None, help=f"With --simulate: the Touchstone file or bundled sample to serve "
@@ -87,22 +87,14 @@ def measure(
     parts: Optional[str] = typer.Option(None, "--parts", help="Part library name under configs/parts/ or a file."),
     station: Optional[str] = typer.Option(None, "--station", help="Station file under configs/stations/ with defaults."),
     as_json: bool = typer.Option(False, "--json", help="Print each result as JSON (one object per line with --loop)."),
-    fixture: Optional[str] = FIXTURE,
-    port_delay: Optional[str] = PORT_DELAY,
-    port_length: Optional[str] = PORT_LENGTH,
-    velocity_factor: Optional[str] = VELOCITY_FACTOR,
-    eps_eff: Optional[str] = EPS_EFF,
-    port_loss: Optional[str] = PORT_LOSS,
-    port_loss_dc: Optional[str] = PORT_LOSS_DC,
-    loss_ref: Optional[str] = LOSS_REF,
+    fixture_flags: FixtureFlags = None,
 ) -> None:
     """Measure on a live analyzer: acquire, de-embed, match, show, store."""
     simulated_file, simulated_band = _simulated_load(load, simulate, resource)
     station_table = load_station(station)
     settings = build_settings(
         band=band or (None if "band" in station_table else simulated_band), spec_rl=spec_rl, series=series,
-        parts=parts, fixture=FixtureFlags(fixture, port_delay, port_length, velocity_factor, eps_eff, port_loss,
-                                          port_loss_dc, loss_ref),
+        parts=parts, fixture=fixture_flags,
         port=port, lot=lot, station=station_table)
     analyzer_profile = load_profile(profile)
     sweep = plan_sweep(analyzer_profile, settings.band_hz, start_hz=_frequency(start, "--start"),

@@ -7,6 +7,9 @@ on the command line, then the station file, then ``configs/default.toml``.
 
 from __future__ import annotations
 
+import functools
+import inspect
+import typing
 from dataclasses import dataclass
 from typing import Optional
 
@@ -46,15 +49,42 @@ class FixtureFlags:
         return chain_for_cli(fixture, **flags)
 
 
-# Typer options shared by every command that de-embeds; each command lists them by name.
-FIXTURE = typer.Option(None, "--fixture", help="Fixture chain: a name under configs/fixtures/ or a TOML file.")
-PORT_DELAY = typer.Option(None, "--port-delay", help="Port extension: one-way delay, e.g. 85p.")
-PORT_LENGTH = typer.Option(None, "--port-length", help="Port extension as a length, e.g. 40mm (with --velocity-factor or --eps-eff).")
-VELOCITY_FACTOR = typer.Option(None, "--velocity-factor", help="Velocity factor of the --port-length line, 0 < v <= 1.")
-EPS_EFF = typer.Option(None, "--eps-eff", help="Effective permittivity of the --port-length line.")
-PORT_LOSS = typer.Option(None, "--port-loss", help="One-way fixture loss in dB at --loss-ref (grows with sqrt f).")
-PORT_LOSS_DC = typer.Option(None, "--port-loss-dc", help="One-way fixture loss in dB at 0 Hz.")
-LOSS_REF = typer.Option(None, "--loss-ref", help="Frequency at which --port-loss is given, e.g. 2.4G.")
+_FIXTURE_OPTIONS = {
+    "fixture": typer.Option(None, "--fixture", help="Fixture chain: a name under configs/fixtures/ or a TOML file."),
+    "port_delay": typer.Option(None, "--port-delay", help="Port extension: one-way delay, e.g. 85p."),
+    "port_length": typer.Option(None, "--port-length", help="Port extension as a length, e.g. 40mm (with --velocity-factor or --eps-eff)."),
+    "velocity_factor": typer.Option(None, "--velocity-factor", help="Velocity factor of the --port-length line, 0 < v <= 1."),
+    "eps_eff": typer.Option(None, "--eps-eff", help="Effective permittivity of the --port-length line."),
+    "port_loss": typer.Option(None, "--port-loss", help="One-way fixture loss in dB at --loss-ref (grows with sqrt f)."),
+    "port_loss_dc": typer.Option(None, "--port-loss-dc", help="One-way fixture loss in dB at 0 Hz."),
+    "loss_ref": typer.Option(None, "--loss-ref", help="Frequency at which --port-loss is given, e.g. 2.4G."),
+}
+
+
+def with_fixture_flags(command):
+    """Give a typer command the fixture options; it receives them as ``fixture_flags``.
+
+    The command declares a parameter ``fixture_flags: FixtureFlags``; typer sees the
+    eight ``--fixture`` / ``--port-*`` options in its place (one definition for every
+    command that de-embeds).
+    """
+    hints = typing.get_type_hints(command)       # resolved in the command's own module
+    signature = inspect.signature(command)
+    kept = [p.replace(kind=inspect.Parameter.KEYWORD_ONLY, annotation=hints[name])
+            for name, p in signature.parameters.items() if name != "fixture_flags"]
+    added = [inspect.Parameter(name, inspect.Parameter.KEYWORD_ONLY, default=option,
+                               annotation=Optional[str])
+             for name, option in _FIXTURE_OPTIONS.items()]
+
+    @functools.wraps(command)
+    def wrapper(*args, **kwargs):
+        flags = FixtureFlags(**{name: kwargs.pop(name) for name in _FIXTURE_OPTIONS})
+        return command(*args, fixture_flags=flags, **kwargs)
+
+    wrapper.__signature__ = signature.replace(parameters=kept + added)
+    wrapper.__annotations__ = {p.name: p.annotation for p in kept + added}
+    del wrapper.__wrapped__              # typer must read the new signature, not the original
+    return wrapper
 
 
 def load_station(name_or_path: str | None) -> dict:

@@ -22,9 +22,8 @@ from rich.logging import RichHandler
 from rich.text import Text
 
 from pipeline.cli import app
-from pipeline.cli.options import (EPS_EFF, FIXTURE, LOSS_REF, PORT_DELAY, PORT_LENGTH, PORT_LOSS,
-                                  PORT_LOSS_DC, VELOCITY_FACTOR, FixtureFlags, build_settings,
-                                  load_station)
+from pipeline.cli.options import (FixtureFlags, build_settings, load_station,
+                                  with_fixture_flags)
 from pipeline.errors import ConfigError
 from pipeline.watch import FolderWatcher, WatchOptions, WatchStatus
 
@@ -33,6 +32,7 @@ STORE_OPEN_WAIT_S = 60.0         # how long to wait for a reader that holds the 
 
 
 @app.command("watch")
+@with_fixture_flags
 def watch(
     folder: Optional[str] = typer.Argument(
         None, help="Folder to watch, recursively (default: watch.folder of the station file)."),
@@ -42,14 +42,7 @@ def watch(
     spec_rl: Optional[float] = typer.Option(None, help="Return loss (dB) a unit must reach over the band."),
     series: Optional[str] = typer.Option(None, help="Part series: E6, E12, E24, E48, E96, E192 or ideal."),
     parts: Optional[str] = typer.Option(None, help="Part library name under configs/parts/ or a file."),
-    fixture: Optional[str] = FIXTURE,
-    port_delay: Optional[str] = PORT_DELAY,
-    port_length: Optional[str] = PORT_LENGTH,
-    velocity_factor: Optional[str] = VELOCITY_FACTOR,
-    eps_eff: Optional[str] = EPS_EFF,
-    port_loss: Optional[str] = PORT_LOSS,
-    port_loss_dc: Optional[str] = PORT_LOSS_DC,
-    loss_ref: Optional[str] = LOSS_REF,
+    fixture_flags: FixtureFlags = None,
     z0: Optional[float] = typer.Option(None, help="Reference impedance, ohm."),
     port: Optional[int] = typer.Option(None, help="Port whose reflection is matched in N-port files."),
     lot: Optional[str] = typer.Option(None, help="Lot id recorded with every unit."),
@@ -94,8 +87,7 @@ def watch(
         stable_s=stable, trust_close=trust_close, polling=polling, poll_interval_s=poll_interval,
         rescan_s=rescan, workers=workers)
     settings = build_settings(band=band, z0=z0, spec_rl=spec_rl, series=series, parts=parts,
-                              fixture=FixtureFlags(fixture, port_delay, port_length, velocity_factor,
-                                                   eps_eff, port_loss, port_loss_dc, loss_ref),
+                              fixture=fixture_flags,
                               port=port, lot=lot, station=station)
     status = run_watch(options, settings, str(store), once=once)
     print(summary_line(status))
