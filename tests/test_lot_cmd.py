@@ -172,3 +172,12 @@ def test_a_dask_cluster_gives_the_same_store_as_the_local_run(small_lot, stored_
     assert local.equals(remote)
     with ResultsStore(stored_lot, mode="r") as a, ResultsStore(store, mode="r") as b:
         assert a.get_lot("line-7")["shared"] == b.get_lot("line-7")["shared"]
+
+
+def test_results_list_failing_names_the_units_the_shared_network_leaves_failing(stored_lot, capsys):
+    with ResultsStore(stored_lot, mode="r") as store:
+        failing = store.get_lot("line-7")["shared"]["failing_unit_ids"]
+    assert main(["results", "list", str(stored_lot), "--failing"]) == 0
+    out = capsys.readouterr().out
+    assert f"{len(failing)} unit(s)" in out and all(dut in out for dut in failing)
+    assert "LKS-0001" not in out

@@ -499,8 +499,10 @@ def filled_store(store_path, monkeypatch):
                              lot="lot-A", settings_hash="s")
         store.put_lot("lot-A", {"shared": {"elements": [
             {"position": "shunt", "kind": "capacitor", "value": 2.7e-12},
-            {"position": "series", "kind": "inductor", "value": 1.5e-8}]},
-            "yield_shared": 0.75, "tolerance": {"yield_with_tolerance": 0.7}})
+            {"position": "series", "kind": "inductor", "value": 1.5e-8}],
+            "n_pass": 3, "n_units": 4, "yield_fraction": 0.75, "failing_unit_ids": ["A0002"]},
+            "tolerance": {"yield_fraction": 0.7, "confidence": 0.95, "ci_low": 0.66, "ci_high": 0.74,
+                          "n_trials": 500, "distribution": "uniform"}})
     return store_path
 
 
@@ -546,7 +548,8 @@ def test_results_summary_reports_pass_rates_failures_and_the_shared_network(fill
     passed_before = int(frame["pass_before"].sum())
     assert f"{passed_before}/4" in out and "3/4 (75 %)" in out
     assert "broken.s1p" in out and "truncated last row (line 12)" in out
-    assert "shunt C 2.7 pF, series L 15 nH" in out and "75.0 %" in out and "70.0 %" in out
+    assert "shunt C 2.7 pF, series L 15 nH" in out and "3/4 (75 %)" in out
+    assert "70.0 % (95 % CI 66.0–74.0 %" in out and "A0002" in out
     assert main(["results", "summary", str(filled_store)]) == 0
     assert "Lot lot-B" in capsys.readouterr().out
 

@@ -83,13 +83,14 @@ def list_units(
     store: Path = STORE_ARG,
     lot: Optional[str] = LOT_OPTION,
     failing: bool = typer.Option(False, "--failing",
-                                 help="Only units that miss the spec even with their own network."),
+                                 help="Only units that miss the spec with their lot's shared network "
+                                      "(or with their own network, where no lot summary is stored)."),
 ):
     """One line per unit (latest record of each DUT): return loss, pass, network."""
     with ResultsStore(store, mode="r") as results:
         frame = results.units_frame(lot=lot)
-    if failing:
-        frame = frame[~frame["pass_after"]]
+        if failing:
+            frame = frame[~frame["pass_after"] | frame["dut_id"].isin(_failing_with_shared(results, frame))]
     table = Table(title=f"{store}: {len(frame)} unit(s)" + (f" in lot {lot}" if lot else ""))
     for header, justify in (("#", "right"), ("DUT", "left"), ("lot", "left"),
                             ("RL before dB", "right"), ("RL after dB", "right"),
@@ -101,6 +102,15 @@ def list_units(
                               "yes" if row["pass_after"] else _fail("no"),
                               network_words(_elements_of(row["elements"]))))
     Console().print(table)
+
+
+def _failing_with_shared(results: ResultsStore, frame: pd.DataFrame) -> set[str]:
+    """DUT ids that the stored shared networks of their lots leave failing."""
+    failing: set[str] = set()
+    for name in set(frame["lot"]):
+        summary = results.get_lot(name) or {}
+        failing.update((summary.get("shared") or {}).get("failing_unit_ids", []))
+    return failing
 
 
 # --------------------------------------------------------------------------- show
@@ -272,15 +282,20 @@ def _lot_rows(frame: pd.DataFrame) -> list[tuple[str, str]]:
 
 
 def _stored_lot_rows(summary: dict) -> list[tuple[str, str]]:
-    """The stored shared network and every yield figure of a lot summary."""
-    rows = []
+    """The stored shared network, its yield, and the predicted production yield."""
     shared = summary.get("shared") or {}
-    if "elements" in shared:
-        rows.append(("shared network", network_words(shared["elements"])))
-    for where in (summary, shared, summary.get("tolerance") or {}):
-        for key, value in where.items():
-            if "yield" in key and isinstance(value, (int, float)) and not isinstance(value, bool):
-                rows.append((key.replace("_", " "), f"{100 * value:.1f} %"))
+    if "elements" not in shared:
+        return [("shared network", "none stored")]
+    rows = [("shared network", network_words(shared["elements"])),
+            ("pass with the shared network", _percent(shared["n_pass"], shared["n_units"]))]
+    tolerance = summary.get("tolerance")
+    if tolerance:
+        rows.append(("predicted production yield",
+                     f"{100 * tolerance['yield_fraction']:.1f} % ({int(100 * tolerance['confidence'])} % CI "
+                     f"{100 * tolerance['ci_low']:.1f}–{100 * tolerance['ci_high']:.1f} %; "
+                     f"{tolerance['n_trials']} trials, part tolerances {tolerance['distribution']})"))
+    failing = shared.get("failing_unit_ids", [])
+    rows.append(("left failing by it", ", ".join(failing) or "none"))
     return rows
 
 
