@@ -176,12 +176,26 @@ def cut_off(path: Path, keep_fraction: float) -> None:
     path.write_text("\n".join(lines[:keep] + [partial]), encoding="ascii")
 
 
+OPEN_FRINGE_F = 20e-15            # fringing capacitance of the open end of the lead-in
+
+
+def make_fixture_standard(rng: np.random.Generator, out: Path) -> None:
+    """lead40mm_open.s1p: the 40 mm lead-in with its far end left open (for fixture fit)."""
+    freq = frequency(2.2e9, 2.7e9, 501)
+    open_end = reflection(1 / (1j * 2 * np.pi * freq.f * OPEN_FRINGE_F))
+    through_lead = lead_in(freq) ** one_port(freq, open_end, "")
+    write(one_port(freq, through_lead.s[:, 0, 0] + noise(rng, freq.npoints),
+                   "Wren asset tag fixture: the 40 mm FR-4 lead-in left open where the antenna "
+                   "goes (20 fF fringing) (synthetic sample data)"), out / "lead40mm_open.s1p")
+
+
 def main(out: Path = HERE) -> None:
     """Write every sample file under ``out`` (the lot folder is replaced)."""
     rng = np.random.default_rng(SEED)
     out.mkdir(parents=True, exist_ok=True)
     make_single_units(rng, out)
     make_lot(rng, out)
+    make_fixture_standard(np.random.default_rng(SEED + 1), out)   # own stream: others unchanged
 
 
 if __name__ == "__main__":
