@@ -93,13 +93,17 @@ def _fit_delay(freq_hz: np.ndarray, ratio: np.ndarray) -> tuple[float, float, fl
     return -slope / (4 * np.pi), offset, float(np.sqrt(np.mean(residual ** 2)))
 
 
+_LOSS_FLOOR_DB = 1e-9      # fitted loss terms below this are reported as 0 dB
+
+
 def _fit_loss(freq_hz: np.ndarray, ratio: np.ndarray, loss_ref_hz: float) -> tuple[float, float, float]:
     """(loss_db_dc, loss_db_at_ref, RMS residual dB): L = a + b sqrt(f/f_ref), a, b >= 0."""
     one_way_db = -10 * np.log10(np.abs(ratio))
     basis = np.column_stack([np.ones_like(freq_hz), np.sqrt(freq_hz / loss_ref_hz)])
     result = lsq_linear(basis, one_way_db, bounds=(0.0, np.inf))
-    a, b = (float(v) for v in result.x)
-    residual = one_way_db - basis @ result.x
+    # A term at its zero bound comes back as ~1e-22 from the solver: that is exactly 0 dB.
+    a, b = (0.0 if v < _LOSS_FLOOR_DB else float(v) for v in result.x)
+    residual = one_way_db - basis @ np.array([a, b])
     return a, a + b, float(np.sqrt(np.mean(residual ** 2)))
 
 
