@@ -49,7 +49,7 @@ from pipeline.errors import ConfigError
 
 # IEC 60063:2015 Table 1 (E3-E24, two significant digits) and Table 2 (E48-E192, three),
 # as integers: mantissa * 10 (E3-E24) or * 100 (E48-E192). Source: ../shared/reference/
-# REFERENCES.md section 2 (cross-checked there against the eseries 1.2.1 transcription).
+# REFERENCES.md section 2 (cross-checked there against the tables of the eseries 1.2.1 package).
 _E_TABLES: dict[str, tuple[int, ...]] = {
     "E3": (10, 22, 47),
     "E6": (10, 15, 22, 33, 47, 68),

@@ -3,7 +3,7 @@
 The E-series tables below are typed in from /work/shared/reference/REFERENCES.md section 2
 (IEC 60063:2015 Tables 1 and 2; from memory there, cross-checked entry by entry against
 the PyPI package eseries 1.2.1: cases ESERIES-E3 ... ESERIES-E192). They are written out
-again here, as integers, on purpose: the test compares two transcriptions.
+again here, as integers, on purpose: the test compares two independent copies.
 """
 
 from __future__ import annotations
