@@ -34,6 +34,7 @@ built from command-line flags for the simple cases (:func:`chain_for_cli`).
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import math
 import os
@@ -461,6 +462,39 @@ class FixtureChain:
                 raise
             sweep = sweep.with_fixture_step(s11, self._record(step))
         return sweep
+
+    def apply_many(self, sweeps: list[Sweep]) -> list[Sweep | MatchbayError]:
+        """:meth:`apply` for sweeps sharing one frequency grid and z0, every step at once.
+
+        Each step removes its fixture from the stacked reflections (the steps work on
+        arrays); each sweep gets the same values and provenance as :meth:`apply` gives it
+        alone. Should a step refuse the grid, the sweeps go through :meth:`apply` one by
+        one, so each carries its own error. A sweep's error is returned in its place.
+        """
+        if self.is_empty:
+            return list(sweeps)
+        freq_hz, z0 = sweeps[0].freq_hz, sweeps[0].z0_ohm
+        try:
+            s11 = np.stack([sweep.s11 for sweep in sweeps])
+            for step in self.steps:
+                s11 = step.remove(freq_hz, s11, z0)
+        except MatchbayError:
+            return [self._apply_or_error(sweep) for sweep in sweeps]
+        steps = tuple(self.describe())
+        out: list = []
+        for sweep, row in zip(sweeps, s11):
+            try:
+                out.append(sweep.replace(s11=row, provenance=dataclasses.replace(
+                    sweep.provenance, fixture=sweep.provenance.fixture + steps)))
+            except MatchbayError as error:
+                out.append(error)
+        return out
+
+    def _apply_or_error(self, sweep: Sweep) -> Sweep | MatchbayError:
+        try:
+            return self.apply(sweep)
+        except MatchbayError as error:
+            return error
 
     def _record(self, step) -> dict:
         return {**step.describe(), "chain": self.name}

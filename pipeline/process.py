@@ -11,7 +11,6 @@ same settings is stored once.
 
 from __future__ import annotations
 
-import dataclasses
 import datetime as _dt
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -91,7 +90,7 @@ def process_sweeps(raws: list[Sweep], settings: Settings) -> list[UnitRecord | M
     """De-embed, band-match and measure many sweeps; per sweep its record or its error.
 
     The units measured on one frequency grid (a lot nearly always shares one) are
-    de-embedded, matched and analysed together (:func:`_deembed_group`,
+    de-embedded, matched and analysed together (:meth:`FixtureChain.apply_many`,
     :func:`pipeline.match.match_band_many`, :func:`pipeline.headroom.analyse_band_many`),
     which gives each the record it would get alone at a fraction of the cost. A unit
     that cannot be processed (e.g. its sweep misses the band) gets its MatchbayError;
@@ -104,7 +103,7 @@ def process_sweeps(raws: list[Sweep], settings: Settings) -> list[UnitRecord | M
     results: list = [None] * len(raws)
     for members in groups.values():
         group = [raws[i] for i in members]
-        duts = _deembed_group(group, settings.fixture)
+        duts = settings.fixture.apply_many(group)
         good = [u for u, dut in enumerate(duts) if not isinstance(dut, MatchbayError)]
         outcomes = list(duts)
         if good:
@@ -114,42 +113,6 @@ def process_sweeps(raws: list[Sweep], settings: Settings) -> list[UnitRecord | M
         for i, outcome in zip(members, outcomes):
             results[i] = outcome
     return results
-
-
-def _deembed_group(raws: list[Sweep], chain: FixtureChain) -> list[Sweep | MatchbayError]:
-    """``chain.apply`` of sweeps sharing one frequency grid and z0, all steps at once.
-
-    Each step removes its fixture from the stacked reflections (the steps work on
-    arrays), and each unit gets one de-embedded Sweep carrying every step in its
-    provenance: the same values and provenance as ``chain.apply`` unit by unit (a test
-    checks it), without the intermediate sweeps. Should a step refuse the grid, the
-    units go through ``chain.apply`` one by one, each getting its own error.
-    """
-    if chain.is_empty:
-        return list(raws)
-    freq_hz, z0 = raws[0].freq_hz, raws[0].z0_ohm
-    try:
-        s11 = np.stack([raw.s11 for raw in raws])
-        for step in chain.steps:
-            s11 = step.remove(freq_hz, s11, z0)
-    except MatchbayError:
-        return [_apply_alone(chain, raw) for raw in raws]
-    steps = tuple(chain.describe())
-    out: list = []
-    for raw, row in zip(raws, s11):
-        try:
-            out.append(raw.replace(s11=row, provenance=dataclasses.replace(
-                raw.provenance, fixture=raw.provenance.fixture + steps)))
-        except MatchbayError as error:
-            out.append(error)
-    return out
-
-
-def _apply_alone(chain: FixtureChain, raw: Sweep) -> Sweep | MatchbayError:
-    try:
-        return chain.apply(raw)
-    except MatchbayError as error:
-        return error
 
 
 @dataclass(frozen=True)
