@@ -20,6 +20,8 @@ from hypothesis import strategies as st
 from skrf.circuit import Circuit
 from skrf.media import DefinedGammaZ0
 
+from sample_data import sample_generator
+
 from pipeline import metrics
 from pipeline.elements import Element
 from pipeline.errors import ConfigError, MatchError
@@ -449,27 +451,13 @@ def test_return_loss_vswr_trade_facts():
 
 # --- many units at once (match_band_many) -----------------------------------------------
 
-def _make_samples():
-    """The sample generator (sample_measurements/make_samples.py), for its antenna model."""
-    import importlib.util
-    import sys
-    from pathlib import Path
-
-    path = Path(__file__).resolve().parents[1] / "sample_measurements" / "make_samples.py"
-    spec = importlib.util.spec_from_file_location("make_samples", path)
-    module = importlib.util.module_from_spec(spec)
-    sys.modules["make_samples"] = module          # dataclasses look their module up
-    spec.loader.exec_module(module)
-    return module
-
-
 def varied_lot(n_units: int, seed: int, f: np.ndarray) -> np.ndarray:
     """(U, F) impedances of invented loads, in turn a series RLC, a parallel RLC and the
     sample generator's antenna model (radiator, feed inductance, pad capacitance), each
     with random values and -50 dB of S11 noise."""
     from dataclasses import replace
 
-    samples = _make_samples()
+    samples = sample_generator()
     rng = np.random.default_rng(seed)
     w = 2 * np.pi * f
     units = []

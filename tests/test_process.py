@@ -9,14 +9,14 @@ by scikit-rf). The reference for every unit is :func:`process_sweep` on it alone
 from __future__ import annotations
 
 import dataclasses
-import importlib.util
-import sys
 from pathlib import Path
 
 import numpy as np
 import pytest
 import skrf
 from skrf.media import DefinedGammaZ0
+
+from sample_data import sample_generator
 
 from pipeline.deembed import FixtureChain, FixtureFile, FixtureLine, PortExtension
 from pipeline.errors import ConfigError, MatchbayError, MatchError
@@ -34,15 +34,7 @@ CHAIN = FixtureChain(steps=(PortExtension(delay_s=20e-12),
                                         loss_ref_hz=1e9)), name="test-chain", source="")
 
 
-def _samples():
-    spec = importlib.util.spec_from_file_location("make_samples", ROOT / "sample_measurements" / "make_samples.py")
-    module = importlib.util.module_from_spec(spec)
-    sys.modules["make_samples"] = module          # dataclasses look their module up
-    spec.loader.exec_module(module)
-    return module
-
-
-SAMPLES = _samples()
+SAMPLES = sample_generator()
 
 
 def unit(freq_hz, i, seed=1):

@@ -9,7 +9,6 @@ fail the shared network, one with a hostile name, and one cut short.
 from __future__ import annotations
 
 import base64
-import importlib.util
 import io
 import json
 import subprocess
@@ -21,6 +20,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+
+from sample_data import sample_generator
 
 from pipeline.cli import main
 from pipeline.elements import Element, PartModel
@@ -41,20 +42,11 @@ DETUNED = {"U-0004": 0.94, "U-0009": 1.055}      # resonance scale: these miss t
 
 # --------------------------------------------------------------------------- test lots
 
-def _samples():
-    path = ROOT / "sample_measurements" / "make_samples.py"
-    spec = importlib.util.spec_from_file_location("make_samples", path)
-    module = importlib.util.module_from_spec(spec)
-    sys.modules["make_samples"] = module          # dataclasses look their module up
-    spec.loader.exec_module(module)
-    return module
-
-
 def write_lot(folder: Path, names: list[str], seed: int = 11, detuned: dict | None = None,
               points: int = 401) -> list[str]:
     """One .s1p per name: the Larkspur model with unit-to-unit spread, noise, and the
     given resonance scales for detuned units."""
-    ms = _samples()
+    ms = sample_generator()
     rng = np.random.default_rng(seed)
     freq = ms.frequency(700e6, 1.1e9, points)
     paths = []

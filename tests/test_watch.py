@@ -19,8 +19,9 @@ import threading
 import time
 from pathlib import Path
 
-import numpy as np
 import pytest
+
+from sample_data import antenna_files
 
 from pipeline.errors import ConfigError
 from pipeline.watch import (CLOSE_SETTLE_S, EMPTY_FILE_WAIT_S, REASON_SUFFIX, CompletionTracker,
@@ -33,33 +34,6 @@ POINTS = 401
 
 
 # --- sample data -----------------------------------------------------------------------------
-
-def antenna_sweeps(n: int, seed: int = 0) -> list[bytes]:
-    """``n`` distinct 401-point .s1p files (bytes) of a series-RLC antenna near 915 MHz.
-
-    Z = R + jwL + 1/(jwC), R ~ 20 ohm, L ~ 30 nH, C resonating near 915 MHz, each with a
-    seeded spread; written by scikit-rf (RI format) so the files are what a real tool writes.
-    """
-    import tempfile
-
-    import skrf
-
-    rng = np.random.default_rng(seed)
-    freq = skrf.Frequency.from_f(np.linspace(800e6, 1000e6, POINTS), unit="Hz")
-    w = 2 * np.pi * freq.f
-    contents = []
-    with tempfile.TemporaryDirectory() as tmp:
-        for i in range(n):
-            r = 20.0 * (1 + 0.1 * rng.standard_normal())
-            l_h = 30e-9 * (1 + 0.05 * rng.standard_normal())
-            c_f = 1 / ((2 * np.pi * 915e6) ** 2 * l_h) * (1 + 0.05 * rng.standard_normal())
-            z = r + 1j * w * l_h + 1 / (1j * w * c_f)
-            s11 = (z - 50) / (z + 50)
-            net = skrf.Network(frequency=freq, s=s11.reshape(-1, 1, 1), z0=50, name=f"u{i}")
-            net.write_touchstone(os.path.join(tmp, f"u{i}"), form="ri")
-            contents.append(Path(tmp, f"u{i}.s1p").read_bytes())
-    return contents
-
 
 def malformed(content: bytes, kind: str) -> bytes:
     """A broken copy: 'truncated' mid-row (a transfer cut short) or 'abc' in a data row."""
@@ -325,7 +299,7 @@ def test_after_lost_events_the_writer_flag_is_dropped(tmp_path):
 @pytest.mark.skipif(not sys.platform.startswith("linux"), reason="inotify close events are Linux-only")
 def test_real_inotify_events_never_call_a_half_written_file_complete(tmp_path):
     """A writer that pauses longer than the stability window while the file is open."""
-    content = antenna_sweeps(1)[0]
+    content = antenna_files(1)[0]
     options = WatchOptions.build(tmp_path, {"stable_s": 0.3})
     inbox: queue.Queue = queue.Queue()
     observer, closes_reported = _start_observer(options, inbox, os.path.realpath(tmp_path))
@@ -401,7 +375,7 @@ def files_under(folder: Path) -> list[str]:
 def test_once_processes_the_backlog_and_accounts_for_every_file(tmp_path):
     inbox, store_path = tmp_path / "inbox", tmp_path / "results.h5"
     (inbox / "lot2").mkdir(parents=True)
-    good = antenna_sweeps(4, seed=1)
+    good = antenna_files(4, seed=1)
     for i, content in enumerate(good[:3]):
         (inbox / f"unit{i}.s1p").write_bytes(content)
     (inbox / "lot2" / "unit3.s1p").write_bytes(good[3])
@@ -437,7 +411,7 @@ def test_restart_after_commit_but_before_move_stores_nothing_twice(tmp_path):
     inbox, store_path = tmp_path / "inbox", tmp_path / "results.h5"
     inbox.mkdir()
     path = inbox / "unit0.s1p"
-    path.write_bytes(antenna_sweeps(1)[0])
+    path.write_bytes(antenna_files(1)[0])
     with ResultsStore(store_path, mode="a") as store:
         store.append(process_file(path, settings()))            # committed; then "killed"
     result = run_cli("watch", inbox, "--store", store_path, "--band", BAND, "--once", "--workers", 0)
@@ -455,7 +429,7 @@ def test_restart_after_failure_recorded_but_before_move_finishes_the_rejection(t
     inbox, store_path = tmp_path / "inbox", tmp_path / "results.h5"
     inbox.mkdir()
     first, second = inbox / "bad1.s1p", inbox / "bad2.s1p"
-    first.write_bytes(malformed(antenna_sweeps(1)[0], "abc"))
+    first.write_bytes(malformed(antenna_files(1)[0], "abc"))
     second.write_bytes(b"! header only\n# Hz S RI R 50\n")
     digest = settings().digest()
     with ResultsStore(store_path, mode="a") as store:
@@ -474,7 +448,7 @@ def test_restart_after_failure_recorded_but_before_move_finishes_the_rejection(t
 def test_kept_in_place_files_are_stored_once_over_many_runs(tmp_path):
     inbox, store_path = tmp_path / "inbox", tmp_path / "results.h5"
     inbox.mkdir()
-    for i, content in enumerate(antenna_sweeps(3, seed=2)):
+    for i, content in enumerate(antenna_files(3, seed=2)):
         (inbox / f"unit{i}.s1p").write_bytes(content)
     for run, expected in ((1, "done 3 (3 stored, 0 already stored)"),
                           (2, "done 3 (0 stored, 3 already stored)")):
@@ -490,7 +464,7 @@ def test_live_watch_takes_files_however_they_arrive(tmp_path):
     inbox, outside, store_path = tmp_path / "inbox", tmp_path / "elsewhere", tmp_path / "results.h5"
     inbox.mkdir()
     outside.mkdir()
-    sweeps = antenna_sweeps(6, seed=3)
+    sweeps = antenna_files(6, seed=3)
     with WatcherThread(inbox, store_path) as running:
         (inbox / "plain.s1p").write_bytes(sweeps[0])                       # write and close
         slow = threading.Thread(target=write_in_chunks,                    # open, pauses > stable_s
@@ -524,7 +498,7 @@ def test_live_watch_takes_files_however_they_arrive(tmp_path):
 def test_polling_observer_for_network_shares(tmp_path):
     inbox, store_path = tmp_path / "inbox", tmp_path / "results.h5"
     inbox.mkdir()
-    sweeps = antenna_sweeps(2, seed=4)
+    sweeps = antenna_files(2, seed=4)
     with WatcherThread(inbox, store_path, polling=True, poll_interval_s=0.2, stable_s=0.6) as running:
         (inbox / "a.s1p").write_bytes(sweeps[0])
         write_in_chunks(inbox / "b.s1p", sweeps[1], 3, 0.2)              # pauses < stable_s
@@ -538,7 +512,7 @@ def test_a_reader_can_follow_the_store_while_the_watcher_writes(tmp_path):
 
     inbox, store_path = tmp_path / "inbox", tmp_path / "results.h5"
     inbox.mkdir()
-    sweeps = antenna_sweeps(4, seed=5)
+    sweeps = antenna_files(4, seed=5)
     with WatcherThread(inbox, store_path):
         with ResultsStore(store_path, mode="r") as reader:              # held open throughout
             seen = [len(reader)]
@@ -555,7 +529,7 @@ def test_a_reader_holding_the_store_before_the_watcher_starts_only_delays_it(tmp
 
     inbox, store_path = tmp_path / "inbox", tmp_path / "results.h5"
     inbox.mkdir()
-    (inbox / "unit0.s1p").write_bytes(antenna_sweeps(1, seed=9)[0])
+    (inbox / "unit0.s1p").write_bytes(antenna_files(1, seed=9)[0])
     ResultsStore(store_path, mode="a").close()
     reader = ResultsStore(store_path, mode="r")
     log = tmp_path / "watch.log"
@@ -587,7 +561,7 @@ def test_a_stop_signal_finishes_the_files_in_hand_and_exits_zero(tmp_path, stop_
                              "--band", BAND, "--workers", "1"], cwd=REPO, stdout=subprocess.PIPE,
                             stderr=subprocess.PIPE, text=True)
     try:
-        for i, content in enumerate(antenna_sweeps(30, seed=6)):
+        for i, content in enumerate(antenna_files(30, seed=6)):
             (inbox / f"unit{i:02d}.s1p").write_bytes(content)
         assert wait_until(lambda: (inbox / "done").is_dir() and any((inbox / "done").iterdir()), 60)
         proc.send_signal(stop_signal)
@@ -627,7 +601,7 @@ def test_a_worker_killed_mid_file_is_replaced_and_the_file_read_again(tmp_path):
     try:
         assert wait_until(lambda: spawned_workers(proc.pid), 60)
         first_worker = spawned_workers(proc.pid)[0]
-        for i, content in enumerate(antenna_sweeps(20, seed=8)):
+        for i, content in enumerate(antenna_files(20, seed=8)):
             (inbox / f"unit{i:02d}.s1p").write_bytes(content)
         assert wait_until(lambda: (inbox / "done").is_dir() and any((inbox / "done").iterdir()), 60)
         os.kill(first_worker, signal.SIGKILL)

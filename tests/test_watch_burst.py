@@ -20,7 +20,7 @@ from pathlib import Path
 
 import pytest
 
-from test_watch import BAND, POINTS, REPO, antenna_sweeps, malformed, store_units, wait_until, write_in_chunks
+from test_watch import BAND, POINTS, REPO, antenna_files, malformed, store_units, wait_until, write_in_chunks
 
 N_FILES = 500
 N_BAD = N_FILES // 20           # 5 % malformed
@@ -87,7 +87,7 @@ def test_burst_with_a_kill_and_restart_loses_nothing_and_doubles_nothing(tmp_pat
     inbox, store, log = tmp_path / "inbox", tmp_path / "results.h5", tmp_path / "watch.log"
     inbox.mkdir()
     log.touch()
-    sweeps = antenna_sweeps(N_FILES, seed=11)
+    sweeps = antenna_files(N_FILES, seed=11)
     good, bad = sweeps[:N_FILES - N_BAD], [malformed(c, ("truncated", "abc")[i % 2])
                                              for i, c in enumerate(sweeps[N_FILES - N_BAD:])]
     rng = random.Random(3)

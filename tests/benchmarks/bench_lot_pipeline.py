@@ -13,7 +13,6 @@ Prints units per second for 1 and 2 and their ratio (goal: >= 0.5).
 
 from __future__ import annotations
 
-import importlib.util
 import os
 import sys
 import tempfile
@@ -26,19 +25,14 @@ import skrf
 
 ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))        # this checkout's pipeline, not whichever one is installed
+sys.path.insert(0, str(ROOT / "tests"))
 
-
-def _samples():
-    spec = importlib.util.spec_from_file_location("make_samples", ROOT / "sample_measurements" / "make_samples.py")
-    module = importlib.util.module_from_spec(spec)
-    sys.modules["make_samples"] = module          # dataclasses look their module up
-    spec.loader.exec_module(module)
-    return module
+from sample_data import sample_generator  # noqa: E402
 
 
 def write_lot(folder: Path, units: int, seed: int = 7) -> list[str]:
     """UNITS one-port files of the Larkspur model with unit-to-unit spread."""
-    ms = _samples()
+    ms = sample_generator()
     rng = np.random.default_rng(seed)
     freq = ms.frequency(700e6, 1.1e9, 401)
     paths = []

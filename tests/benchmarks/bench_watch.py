@@ -37,31 +37,13 @@ import numpy as np
 
 REPO = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(REPO))
+sys.path.insert(0, str(REPO / "tests"))
+
+from sample_data import antenna_files  # noqa: E402
 
 BAND = "902M:928M"
 POINTS = 401
 CLI = "import sys; from pipeline.cli import main; sys.exit(main(sys.argv[1:]))"
-
-
-def invented_sweeps(n: int, seed: int = 5) -> list[bytes]:
-    """``n`` 401-point .s1p files (bytes): series-RLC antennas near 915 MHz with a seeded
-    spread, written by scikit-rf."""
-    import skrf
-
-    rng = np.random.default_rng(seed)
-    freq = skrf.Frequency.from_f(np.linspace(800e6, 1000e6, POINTS), unit="Hz")
-    w = 2 * np.pi * freq.f
-    out = []
-    with tempfile.TemporaryDirectory() as tmp:
-        for i in range(n):
-            r = 20.0 * (1 + 0.1 * rng.standard_normal())
-            l_h = 30e-9 * (1 + 0.05 * rng.standard_normal())
-            c_f = 1 / ((2 * np.pi * 915e6) ** 2 * l_h) * (1 + 0.05 * rng.standard_normal())
-            z = r + 1j * w * l_h + 1 / (1j * w * c_f)
-            net = skrf.Network(frequency=freq, s=((z - 50) / (z + 50)).reshape(-1, 1, 1), z0=50)
-            net.write_touchstone(os.path.join(tmp, "u"), form="ri")
-            out.append(Path(tmp, "u.s1p").read_bytes())
-    return out
 
 
 class Watcher:
@@ -228,7 +210,7 @@ def main(argv=None) -> int:
     parser.add_argument("--only", choices=["cost", "latency", "throughput", "once"])
     args = parser.parse_args(argv)
     print(f"python {sys.version.split()[0]}, {os.cpu_count()} cores; generating {args.files} sweeps...")
-    sweeps = invented_sweeps(args.files)
+    sweeps = antenna_files(args.files, seed=5)
     assert len({hashlib.sha256(s).hexdigest() for s in sweeps}) == len(sweeps)
     with tempfile.TemporaryDirectory() as tmp:
         root = Path(tmp)
