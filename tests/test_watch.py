@@ -73,11 +73,17 @@ def settings(**overrides):
     return Settings(band_hz=(902e6, 928e6), **overrides)
 
 
+CLI = [sys.executable, "-c", "import sys; from pipeline.cli import main; sys.exit(main(sys.argv[1:]))"]
+
+
 def run_cli(*args, timeout=120) -> subprocess.CompletedProcess:
     """`matchbay ARGS` as a real subprocess (worker processes, signals)."""
-    code = "import sys; from pipeline.cli import main; sys.exit(main(sys.argv[1:]))"
-    return subprocess.run([sys.executable, "-c", code, *map(str, args)], cwd=REPO, capture_output=True,
-                          text=True, timeout=timeout)
+    return subprocess.run([*CLI, *map(str, args)], cwd=REPO, capture_output=True, text=True, timeout=timeout)
+
+
+def start_cli(*args, stdout=subprocess.PIPE, stderr=subprocess.PIPE) -> subprocess.Popen:
+    """`matchbay ARGS` started as a real subprocess, text I/O."""
+    return subprocess.Popen([*CLI, *map(str, args)], cwd=REPO, stdout=stdout, stderr=stderr, text=True)
 
 
 # --- names, moves, sidecars ------------------------------------------------------------------
@@ -533,11 +539,9 @@ def test_a_reader_holding_the_store_before_the_watcher_starts_only_delays_it(tmp
     ResultsStore(store_path, mode="a").close()
     reader = ResultsStore(store_path, mode="r")
     log = tmp_path / "watch.log"
-    code = "import sys; from pipeline.cli import main; sys.exit(main(sys.argv[1:]))"
     with open(log, "w") as err:
-        proc = subprocess.Popen([sys.executable, "-c", code, "watch", str(inbox), "--store", str(store_path),
-                                 "--band", BAND, "--once", "--workers", "0"], cwd=REPO,
-                                stdout=subprocess.PIPE, stderr=err, text=True)
+        proc = start_cli("watch", inbox, "--store", store_path, "--band", BAND, "--once", "--workers", "0",
+                         stderr=err)
     try:
         assert wait_until(lambda: "opening the store" in log.read_text(), 30)
         time.sleep(2.0)
@@ -556,10 +560,7 @@ def test_a_reader_holding_the_store_before_the_watcher_starts_only_delays_it(tmp
 def test_a_stop_signal_finishes_the_files_in_hand_and_exits_zero(tmp_path, stop_signal):
     inbox, store_path = tmp_path / "inbox", tmp_path / "results.h5"
     inbox.mkdir()
-    code = "import sys; from pipeline.cli import main; sys.exit(main(sys.argv[1:]))"
-    proc = subprocess.Popen([sys.executable, "-c", code, "watch", str(inbox), "--store", str(store_path),
-                             "--band", BAND, "--workers", "1"], cwd=REPO, stdout=subprocess.PIPE,
-                            stderr=subprocess.PIPE, text=True)
+    proc = start_cli("watch", inbox, "--store", store_path, "--band", BAND, "--workers", "1")
     try:
         for i, content in enumerate(antenna_files(30, seed=6)):
             (inbox / f"unit{i:02d}.s1p").write_bytes(content)
@@ -594,10 +595,7 @@ def spawned_workers(pid: int) -> list[int]:
 def test_a_worker_killed_mid_file_is_replaced_and_the_file_read_again(tmp_path):
     inbox, store_path = tmp_path / "inbox", tmp_path / "results.h5"
     inbox.mkdir()
-    code = "import sys; from pipeline.cli import main; sys.exit(main(sys.argv[1:]))"
-    proc = subprocess.Popen([sys.executable, "-c", code, "watch", str(inbox), "--store", str(store_path),
-                             "--band", BAND, "--workers", "1"], cwd=REPO, stdout=subprocess.PIPE,
-                            stderr=subprocess.PIPE, text=True)
+    proc = start_cli("watch", inbox, "--store", store_path, "--band", BAND, "--workers", "1")
     try:
         assert wait_until(lambda: spawned_workers(proc.pid), 60)
         first_worker = spawned_workers(proc.pid)[0]

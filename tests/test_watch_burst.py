@@ -20,7 +20,8 @@ from pathlib import Path
 
 import pytest
 
-from test_watch import BAND, POINTS, REPO, antenna_files, malformed, store_units, wait_until, write_in_chunks
+from sample_data import antenna_files
+from test_watch import BAND, POINTS, malformed, start_cli, store_units, wait_until, write_in_chunks
 
 N_FILES = 500
 N_BAD = N_FILES // 20           # 5 % malformed
@@ -30,11 +31,9 @@ KILL_AFTER_DONE = 120           # SIGKILL once this many files are in done/
 
 def start_watcher(inbox: Path, store: Path, log: Path) -> subprocess.Popen:
     """`matchbay watch` with default settings, once it has started watching (logs to ``log``)."""
-    code = "import sys; from pipeline.cli import main; sys.exit(main(sys.argv[1:]))"
     started = log.read_text().count("INFO watching ")
     with open(log, "a") as err:
-        proc = subprocess.Popen([sys.executable, "-c", code, "watch", str(inbox), "--store", str(store),
-                                 "--band", BAND], cwd=REPO, stdout=subprocess.DEVNULL, stderr=err)
+        proc = start_cli("watch", inbox, "--store", store, "--band", BAND, stdout=subprocess.DEVNULL, stderr=err)
     assert wait_until(lambda: log.read_text().count("INFO watching ") > started, 60), log.read_text()
     return proc
 
